@@ -20,6 +20,8 @@ Shape (every key is ours; ``[…]`` optional)::
     time_column = "reading_date"
     [key_column = "row_id"]              # names rows in reports (default: time_column)
     [batch_rows = 65536]
+    [time_partition = "month", time_partition_format = "%Y-%m"]   # parquet: a Hive partition
+                                         # key holding dates, so windows prune whole folders
     [monitors.NAME.source.schema]        # declared column types, checked on every read
     heat_mwh = "float64"
 
@@ -64,6 +66,8 @@ from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from ..errors import ConfigurationError, FormulaError
+from storage.sources import DECLARED_TYPES
+
 from ..stats.formula import parse_formula
 
 __all__ = [
@@ -81,8 +85,7 @@ __all__ = [
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,62}$")
 _CRITERIA = ("aic", "bic", "aicc")
 _MISSED = ("run_latest", "run_all", "skip")
-_TYPES = ("float64", "float32", "int64", "int32", "int16", "int8", "bool", "string",
-          "timestamp", "date")
+_TYPES = tuple(sorted(DECLARED_TYPES))
 
 
 @dataclass(frozen=True, slots=True)
@@ -97,6 +100,8 @@ class SourceSpec:
     key_column: str | None = None
     batch_rows: int = 65_536
     schema: Mapping[str, str] = field(default_factory=dict)
+    time_partition: str | None = None
+    time_partition_format: str = "%Y-%m-%d"
 
 
 @dataclass(frozen=True, slots=True)
@@ -348,13 +353,16 @@ def _parse_source(reader: _Reader, base: Path | None) -> SourceSpec:
                     where=schema_reader.key(column), hint=f"use one of {', '.join(_TYPES)}")
             schema[column] = type_name
     if kind == "parquet":
+        time_partition = reader.get("time_partition", str, None)
+        time_partition_format = reader.get("time_partition_format", str, "%Y-%m-%d")
         raw = reader.get("path", str)
         path = Path(raw)
         if not path.is_absolute() and base is not None:
             path = base / path
         reader.finish()
         return SourceSpec(kind, time_column, path=path, key_column=key_column,
-                          batch_rows=batch_rows, schema=schema)
+                          batch_rows=batch_rows, schema=schema, time_partition=time_partition,
+                          time_partition_format=time_partition_format)
     url = reader.get("url", str, None)
     url_env = reader.get("url_env", str, None)
     if (url is None) == (url_env is None):
