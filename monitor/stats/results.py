@@ -21,6 +21,12 @@ Conventions (stated once, here)
   ``AICc = −2ℓ + 2k + 2k(k+1)/(n−k−1)`` with ``k = rank + 1``; equal to
   ``n·ln(SSR/n) + n·(n+rank)/(n−rank−2)`` plus the constant ``n·(ln 2π + 1)``.
   It is not shift-invariant, so this one count is used everywhere.
+* An exact fit at the data's precision: a residual sum of squares at or below
+  ``u²·ss_total`` (``u = 2⁻⁵³``, the unit round-off) is smaller than the rounding
+  of the response values themselves when they were stored as doubles, so it
+  carries no information and is reported as 0 (σ = 0, F = ∞).  NIST certifies
+  its Wampler2 polynomial, whose decimal data are fitted exactly, in this way;
+  the doubles nearest its data leave an SSR of about 0.05·u²·Σy².
 * Non-finite values are kept as ``float('inf')``/``nan`` in the objects and become
   ``null`` in JSON (:func:`to_jsonable`).
 
@@ -48,12 +54,18 @@ import numpy as np
 from scipy import stats
 
 __all__ = [
+    "EXACT_FIT_LEVEL",
     "Coefficient",
     "FitResult",
     "information_criteria",
     "make_fit_result",
     "to_jsonable",
 ]
+
+
+#: Residual sums of squares at or below this fraction of the total sum of squares
+#: are rounding of the data, not residual variation (see the module notes).
+EXACT_FIT_LEVEL = 2.0**-106
 
 
 @dataclass(frozen=True, slots=True)
@@ -186,6 +198,8 @@ def make_fit_result(
     df_resid = n - rank
     ss_resid = max(float(ss_resid), 0.0)
     ss_model = max(float(ss_model), 0.0)
+    if ss_resid <= EXACT_FIT_LEVEL * (ss_model + ss_resid):
+        ss_resid = 0.0  # exact fit at the precision of the data (module notes)
     ss_total = ss_model + ss_resid
     ms_resid = ss_resid / df_resid if df_resid > 0 else math.nan
     ms_model = ss_model / df_model if df_model > 0 else math.nan
