@@ -624,8 +624,26 @@ def _as_text(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     missing = np.fromiter(
         (v is None or (isinstance(v, float) and math.isnan(v)) for v in array), dtype=bool,
         count=len(array))
-    text = np.array([None if m else str(v) for v, m in zip(array, missing, strict=True)], dtype=object)
+    text = np.array([None if m else _level_text(v) for v, m in zip(array, missing, strict=True)],
+                    dtype=object)
     return text, missing
+
+
+def _level_text(value: Any) -> str:
+    """A level as text; whole numbers without a trailing '.0' (codes arrive as floats)."""
+    if isinstance(value, (float, np.floating)) and math.isfinite(value) and float(value).is_integer():
+        return str(int(value))
+    if isinstance(value, np.integer):
+        return str(int(value))
+    return str(value)
+
+
+def _level_order(level: str) -> tuple[int, float, str]:
+    """Sort key of levels: numbers by value (so 2 before 10), then text."""
+    try:
+        return (0, float(level), level)
+    except ValueError:
+        return (1, 0.0, level)
 
 
 def _is_text_column(values: np.ndarray) -> bool:
@@ -701,10 +719,10 @@ def build_design(
     for column in sorted(categorical_columns):
         spec = declared.get(column, CategoricalSpec())
         if spec.levels is not None:
-            column_levels = tuple(str(level) for level in spec.levels)
+            column_levels = tuple(_level_text(level) for level in spec.levels)
         else:
             text, missing_mask = _as_text(data[column])
-            column_levels = tuple(sorted({str(v) for v in text[~missing_mask]}))
+            column_levels = tuple(sorted({str(v) for v in text[~missing_mask]}, key=_level_order))
         if not column_levels:
             raise DataValidationError(f"categorical column {column!r} has no values",
                                       where=f"column {column!r}",
