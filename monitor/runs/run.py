@@ -1,0 +1,297 @@
+"""One monitoring run: spec → source → family (pass 1, verdict) → history, in one transaction.
+
+``run_monitor(config, name, as_of=None)`` resolves the fresh window for
+``as_of`` (half-open ``[as_of − fresh, as_of)``), claims the slot in the run
+ledger (a slot completed before is a no-op), reads the window, evaluates the
+family on it (one scan for every candidate; per segment when the monitor has a
+segment column) and writes every result row together with the run's status in
+ONE transaction.  A failure at any step is recorded as a failed run with its step
+and reason; the slot can be run again.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import getpass
+import logging
+import math
+import os
+import socket
+import time
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from storage.history import (
+    CoefficientRow,
+    ComparisonRow,
+    HistoryStore,
+    MetricRow,
+    RunRecord,
+    VerdictRow,
+)
+
+from .._frames import arrow_to_columns
+from ..errors import RegwardenError
+from ._build import open_source, open_store
+from .spec import MonitorSpec, Spec, load_spec
+
+__all__ = ["RunOutcome", "default_owner", "run_monitor", "slot_of"]
+
+logger = logging.getLogger(__name__)
+
+#: metrics stored per model and segment (long form: one row each)
+FIT_METRICS = ("n", "rank", "r_squared", "adj_r_squared", "f_statistic", "f_pvalue", "sigma",
+               "ss_model", "ss_resid", "log_likelihood", "aic", "bic", "aicc")
+RANKING_METRICS = ("delta", "weight")
+
+
+@dataclass(frozen=True, slots=True)
+class RunOutcome:
+    """What one call of :func:`run_monitor` did for one monitor."""
+
+    monitor: str
+    slot_at: dt.datetime
+    status: str  # "completed", "failed" or "skipped" (slot recorded before / held elsewhere)
+    run_id: int | None = None
+    step: str | None = None
+    reason: str | None = None
+    window_start: dt.datetime | None = None
+    window_end: dt.datetime | None = None
+    rows_read: int = 0
+    rows_dropped: int = 0
+    verdicts: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
+    exit_code: int = 0
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "monitor": self.monitor, "slot_at": self.slot_at.isoformat(), "status": self.status,
+            "run_id": self.run_id, "step": self.step, "reason": self.reason,
+            "window_start": self.window_start.isoformat() if self.window_start else None,
+            "window_end": self.window_end.isoformat() if self.window_end else None,
+            "rows_read": self.rows_read, "rows_dropped": self.rows_dropped,
+            "verdicts": {k: dict(v) for k, v in self.verdicts.items()},
+        }
+
+
+def default_owner() -> str:
+    return f"{socket.gethostname()}:{os.getpid()}"
+
+
+def slot_of(as_of: dt.datetime | dt.date | str | None, now: dt.datetime | None = None
+            ) -> dt.datetime:
+    """The run's instant in UTC: a date means its midnight UTC; None means now (to the second)."""
+    if as_of is None:
+        moment = now or dt.datetime.now(dt.UTC)
+        return moment.astimezone(dt.UTC).replace(microsecond=0)
+    if isinstance(as_of, str):
+        as_of = dt.datetime.fromisoformat(as_of)
+    if isinstance(as_of, dt.datetime):
+        moment = as_of if as_of.tzinfo else as_of.replace(tzinfo=dt.UTC)
+        return moment.astimezone(dt.UTC)
+    return dt.datetime(as_of.year, as_of.month, as_of.day, tzinfo=dt.UTC)
+
+
+class _Step:
+    """Remembers which step of the run is under way, for the failure record."""
+
+    def __init__(self) -> None:
+        self.name = "start"
+        self.timings: dict[str, float] = {}
+        self._started = time.perf_counter()
+
+    def __call__(self, name: str) -> None:
+        now = time.perf_counter()
+        self.timings[self.name] = round(now - self._started, 4)
+        self.name = name
+        self._started = now
+
+
+def run_monitor(
+    config: str | Path | Spec,
+    name: str,
+    as_of: dt.datetime | dt.date | str | None = None,
+    *,
+    store: HistoryStore | None = None,
+    owner: str | None = None,
+    now: dt.datetime | None = None,
+) -> RunOutcome:
+    """Run one monitor for the slot ``as_of`` and record it in the history store.
+
+    Returns a :class:`RunOutcome`; a failure inside the run does not raise but is
+    recorded (status ``failed``, its step and reason).  Only an invalid spec or an
+    unusable store raise (:class:`monitor.errors.ConfigurationError`,
+    :class:`monitor.errors.StorageError`), since then nothing can be recorded.
+    """
+    spec = config if isinstance(config, Spec) else load_spec(config)
+    monitor = spec.monitor(name)
+    own_store = store is None
+    history = open_store(spec) if store is None else store
+    try:
+        slot = slot_of(as_of, now)
+        claim = history.claim_slot(monitor.name, slot, owner or default_owner(), now=now)
+        if claim is None:
+            return RunOutcome(monitor.name, slot, "skipped",
+                              reason="this slot was recorded before or is being run elsewhere")
+        step = _Step()
+        started_at = dt.datetime.now(dt.UTC)
+        window_start, window_end = monitor.windows.fresh_window(slot)
+        record: dict[str, Any] = {"window_start": window_start, "window_end": window_end,
+                                  "started_at": started_at,
+                                  "detail": {"spec_digest": spec.digest,
+                                             "spec_path": str(spec.path) if spec.path else None}}
+        try:
+            step("source")
+            source = open_source(monitor)
+            columns = _needed_columns(monitor)
+            scan = source.scan(columns, window_start, window_end)
+            step("evaluate")
+            segments = _segments(scan, monitor)
+            rows: dict[str, list[Any]] = {"metrics": [], "coefficients": [], "comparisons": [],
+                                          "verdicts": []}
+            verdicts: dict[str, Mapping[str, Any]] = {}
+            rows_read = rows_dropped = 0
+            for segment in segments:
+                chunks = _chunk_source(scan, monitor, segment)
+                report = _evaluate(monitor, chunks)
+                data = report.to_dict()
+                verdicts[segment] = data["verdict"]
+                rows_read += int(data.get("rows", {}).get("rows_read", 0))
+                rows_dropped += int(data.get("rows", {}).get("dropped_rows", 0))
+                _collect_rows(rows, report, data, monitor, segment)
+            step("history")
+            record.update(rows_read=scan.rows or rows_read, rows_dropped=rows_dropped,
+                          watermark_at=scan.max_time, finished_at=dt.datetime.now(dt.UTC),
+                          timings=step.timings)
+            run_id = history.complete_run(claim, RunRecord(**record), now=now, **rows)
+            return RunOutcome(monitor.name, slot, "completed", run_id, None, None, window_start,
+                              window_end, int(scan.rows or rows_read), rows_dropped, verdicts)
+        except RegwardenError as error:
+            return _record_failure(history, claim, monitor, slot, step, record, error,
+                                   error.kind, error.exit_code, now)
+        except Exception as error:  # noqa: BLE001 - a bug must still leave a failed run behind
+            logger.exception("monitor %r failed in step %s", monitor.name, step.name)
+            return _record_failure(history, claim, monitor, slot, step, record, error,
+                                   "internal", 4, now)
+    finally:
+        if own_store:
+            history.close()
+
+
+def _record_failure(history: HistoryStore, claim: Any, monitor: MonitorSpec, slot: dt.datetime,
+                    step: _Step, record: dict[str, Any], error: BaseException, kind: str,
+                    exit_code: int, now: dt.datetime | None) -> RunOutcome:
+    reason = str(error) if isinstance(error, RegwardenError) else \
+        f"{type(error).__name__}: {error} (a bug; see the log)"
+    record.update(finished_at=dt.datetime.now(dt.UTC), timings=step.timings)
+    run_id = history.fail_run(claim, step.name, reason, run=RunRecord(**record),
+                              error_kind=kind, now=now)
+    logger.warning("monitor %r slot %s failed in step %s: %s", monitor.name, slot.isoformat(),
+                   step.name, reason)
+    return RunOutcome(monitor.name, slot, "failed", run_id, step.name, reason,
+                      record.get("window_start"), record.get("window_end"),
+                      exit_code=exit_code)
+
+
+def _needed_columns(monitor: MonitorSpec) -> list[str]:
+    from ..stats.formula import parse_formula
+
+    columns: list[str] = [monitor.source.time_column]
+    for formula in monitor.family.candidates.values():
+        for column in parse_formula(formula).columns:
+            if column not in columns:
+                columns.append(column)
+    for extra in (monitor.source.key_column, monitor.segment_column):
+        if extra and extra not in columns:
+            columns.append(extra)
+    return columns
+
+
+def _segments(scan: Any, monitor: MonitorSpec) -> list[str]:
+    """Segment values present in the window ("" when the monitor has no segment column)."""
+    if not monitor.segment_column:
+        return [""]
+    values: set[str] = set()
+    for batch in scan:
+        column = batch.column(batch.schema.get_field_index(monitor.segment_column))
+        values.update(str(v) for v in pc.unique(column).to_pylist() if v is not None)
+    return sorted(values)
+
+
+def _chunk_source(scan: Any, monitor: MonitorSpec, segment: str
+                  ) -> Callable[[], Iterator[Mapping[str, np.ndarray]]]:
+    column = monitor.segment_column
+
+    def chunks() -> Iterator[Mapping[str, np.ndarray]]:
+        for batch in scan:
+            if column:
+                mask = pc.equal(pc.cast(batch.column(batch.schema.get_field_index(column)),
+                                        pa.string()), segment)
+                batch = batch.filter(mask)
+                if batch.num_rows == 0:
+                    continue
+            yield arrow_to_columns(batch)
+    return chunks
+
+
+def _evaluate(monitor: MonitorSpec, chunks: Callable[[], Iterator[Mapping[str, np.ndarray]]]
+              ) -> Any:
+    from ..stats.family import FamilySpec, evaluate_family
+
+    family = monitor.family
+    spec = FamilySpec(response=family.response, candidates=dict(family.candidates),
+                      chosen=family.chosen, criterion=family.criterion, alpha=family.alpha,
+                      margin=family.margin)
+    return evaluate_family(spec, chunks, refinement_passes=1)
+
+
+def _number(value: Any) -> float | None:
+    if value is None:
+        return None
+    number = float(value)
+    return number if math.isfinite(number) else None
+
+
+def _collect_rows(rows: dict[str, list[Any]], report: Any, data: Mapping[str, Any],
+                  monitor: MonitorSpec, segment: str) -> None:
+    fits = getattr(report, "fits", {})
+    ranking = {row["name"]: row for row in data["ranking"]}
+    for name, fit in fits.items():
+        for metric in FIT_METRICS:
+            rows["metrics"].append(MetricRow(model=name, metric=metric,
+                                             value=_number(getattr(fit, metric)), segment=segment))
+        for metric in RANKING_METRICS:
+            rows["metrics"].append(MetricRow(model=name, metric=metric,
+                                             value=_number(ranking.get(name, {}).get(metric)),
+                                             segment=segment))
+        for coefficient in fit.coefficients:
+            rows["coefficients"].append(CoefficientRow(
+                model=name, term=coefficient.term, estimate=_number(coefficient.estimate),
+                std_error=_number(coefficient.std_error), ci_lower=_number(coefficient.ci_lower),
+                ci_upper=_number(coefficient.ci_upper), ci_level=fit.confidence_level,
+                p_value=_number(coefficient.p_value), segment=segment))
+    for test in data.get("nested", []):
+        for kind, statistic, p_value in (("partial_f", "f_statistic", "f_pvalue"),
+                                         ("likelihood_ratio", "lr_statistic", "lr_pvalue")):
+            rows["comparisons"].append(ComparisonRow(
+                model=test["smaller"], other_model=test["larger"], test=kind,
+                statistic=_number(test.get(statistic)), p_value=_number(test.get(p_value)),
+                df=_number(test.get("df")), segment=segment))
+    verdict = data["verdict"]
+    rows["verdicts"].append(VerdictRow(
+        criterion=monitor.family.criterion, best_model=verdict.get("best"),
+        chosen_model=verdict.get("chosen"), is_chosen_best=verdict.get("chosen_is_best"),
+        margin=monitor.family.margin, detail=verdict, segment=segment))
+
+
+def run_as_user() -> str:
+    """The OS user, for promotions and acknowledgements."""
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):
+        return "unknown"
