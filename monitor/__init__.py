@@ -19,6 +19,8 @@ _EXPORTS = {
     "Coefficient": "monitor.stats.results",
     "CategoricalSpec": "monitor.stats.formula",
     "parse_formula": "monitor.stats.formula",
+    "Family": "monitor.family",
+    "FamilyReport": "monitor.stats.family",
     "RegwardenError": "monitor.errors",
     "ConfigurationError": "monitor.errors",
     "FormulaError": "monitor.errors",
