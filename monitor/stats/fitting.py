@@ -20,7 +20,7 @@ import numpy as np
 
 from ..errors import DataValidationError, ModelFitError
 from .engine import LeastSquaresState, SubsetFactor
-from .formula import CategoricalSpec, Design, ParsedFormula, build_design
+from .formula import CategoricalSpec, Design, ParsedFormula, _as_text, _level_order, build_design
 from .refine import GradientSums, accurate_residuals, correction
 from .results import FitResult, make_fit_result
 
@@ -233,6 +233,39 @@ def result_of(
     )
 
 
+def _design_over_all_chunks(
+    chunks: ChunkSource,
+    formulas: Sequence[str | ParsedFormula],
+    categorical: Mapping[str, CategoricalSpec] | None,
+) -> Design | None:
+    """The design with every categorical level seen in any chunk (None: no rows)."""
+    declared = dict(categorical or {})
+    design: Design | None = None
+    first: Chunk = {}
+    seen: dict[str, set[str]] = {}
+    for chunk in chunks():
+        if not chunk or len(next(iter(chunk.values()))) == 0:
+            continue
+        if design is None:
+            first = chunk
+            design = build_design(formulas, chunk, categorical=categorical)
+            open_columns = [c for c in design.categorical_columns
+                            if declared.get(c, CategoricalSpec()).levels is None]
+            if not open_columns:
+                return design
+            seen = {c: set() for c in open_columns}
+        for column, levels in seen.items():
+            text, missing = _as_text(chunk[column])
+            levels.update(str(v) for v in text[~missing])
+    if design is None:
+        return None
+    for column, levels in seen.items():
+        spec = declared.get(column, CategoricalSpec())
+        declared[column] = CategoricalSpec(levels=tuple(sorted(levels, key=_level_order)),
+                                           reference=spec.reference)
+    return build_design(formulas, first, categorical=declared)
+
+
 def fit_formulas(
     chunks: ChunkSource,
     formulas: Sequence[str | ParsedFormula],
@@ -241,8 +274,14 @@ def fit_formulas(
     strict: bool = False,
     refinement_passes: int = 3,
 ) -> tuple[PassOne, list[FitResult]]:
-    """Fit every formula on the same rows: one pass for the state, then refinement passes."""
-    one = pass_one(chunks(), formulas, categorical=categorical, strict=strict)
+    """Fit every formula on the same rows: one pass for the state, then refinement passes.
+
+    Levels of categorical columns that are not declared are collected over every
+    chunk first (an extra read of the rows, only when there are such columns), so
+    a level missing from the first chunk is still a level of the fit.
+    """
+    design = _design_over_all_chunks(chunks, formulas, categorical)
+    one = pass_one(chunks(), formulas, design=design, categorical=categorical, strict=strict)
     factors = [derive_factor(one, m) for m in range(len(one.design.models))]
     if refinement_passes > 0:
         coefficients, ssr, steps = refine_factors(chunks, one.design, factors,
