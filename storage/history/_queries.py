@@ -105,18 +105,20 @@ def metric_trend(connection: sa.Connection, tables: HistoryTables, monitor: str,
                     start=start, end=end, order=[table.c.segment, table.c.model])
 
 
-def check_trend(connection: sa.Connection, tables: HistoryTables, monitor: str, check: str,
-                *, model: str | None, segment: str | None, start: dt.datetime | None,
-                end: dt.datetime | None) -> pd.DataFrame:
+def check_trend(connection: sa.Connection, tables: HistoryTables, monitor: str,
+                check: str | None, *, model: str | None, segment: str | None,
+                start: dt.datetime | None, end: dt.datetime | None,
+                with_detail: bool = False) -> pd.DataFrame:
     """Columns: run axis, ``segment``, ``model``, ``check_name``, ``statistic``,
-    ``p_value``, ``df``, ``df2``, ``verdict``, ``is_exact``, ``sample_size``, ``rows``."""
+    ``p_value``, ``df``, ``df2``, ``verdict``, ``is_exact``, ``sample_size``, ``rows``
+    (and ``detail``, the parsed JSON, when ``with_detail``).  ``check=None``: every check."""
     table = tables.checks
-    columns = [table.c[name] for name in ("segment", "model", "check_name", "statistic",
-                                          "p_value", "df", "df2", "verdict", "is_exact",
-                                          "sample_size", "rows")]
-    return _results(connection, tables, table, columns, monitor,
+    names = ["segment", "model", "check_name", "statistic", "p_value", "df", "df2", "verdict",
+             "is_exact", "sample_size", "rows"] + (["detail"] if with_detail else [])
+    return _results(connection, tables, table, [table.c[name] for name in names], monitor,
                     filters={"check_name": check, "model": model, "segment": segment},
-                    start=start, end=end, order=[table.c.segment, table.c.model])
+                    start=start, end=end,
+                    order=[table.c.segment, table.c.model, table.c.check_name])
 
 
 def coefficient_paths(connection: sa.Connection, tables: HistoryTables, monitor: str, *,
@@ -135,14 +137,16 @@ def coefficient_paths(connection: sa.Connection, tables: HistoryTables, monitor:
 
 def verdict_history(connection: sa.Connection, tables: HistoryTables, monitor: str, *,
                     criterion: str | None, segment: str | None, start: dt.datetime | None,
-                    end: dt.datetime | None) -> pd.DataFrame:
+                    end: dt.datetime | None, with_detail: bool = False) -> pd.DataFrame:
     """Columns: run axis, ``segment``, ``criterion``, ``best_model``, ``chosen_model``,
-    ``is_chosen_best``, ``margin``, and ``previous_best`` / ``changed``: the best
-    model of the previous run (same segment and criterion, within the frame) and
-    whether it differs (False on the first row of each group)."""
+    ``is_chosen_best``, ``margin`` (``detail``, the parsed JSON, when ``with_detail``),
+    and ``previous_best`` / ``changed``: the best model of the previous run (same
+    segment and criterion, within the frame) and whether it differs (False on the
+    first row of each group)."""
     table = tables.verdicts
-    columns = [table.c[name] for name in ("segment", "criterion", "best_model",
-                                          "chosen_model", "is_chosen_best", "margin")]
+    names = ["segment", "criterion", "best_model", "chosen_model", "is_chosen_best",
+             "margin"] + (["detail"] if with_detail else [])
+    columns = [table.c[name] for name in names]
     frame = _results(connection, tables, table, columns, monitor,
                      filters={"criterion": criterion, "segment": segment},
                      start=start, end=end, order=[table.c.segment, table.c.criterion])

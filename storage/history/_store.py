@@ -940,14 +940,15 @@ class HistoryStore:
                                          segment=segment, start=_utc(start, name="start"),
                                          end=_utc(end, name="end"))
 
-    def check_trend(self, monitor: str, check: str, *, model: str | None = None,
+    def check_trend(self, monitor: str, check: str | None, *, model: str | None = None,
                     segment: str | None = None, start: dt.datetime | None = None,
-                    end: dt.datetime | None = None) -> pd.DataFrame:
-        """One check's statistic, p-value and verdict over completed runs."""
+                    end: dt.datetime | None = None, with_detail: bool = False) -> pd.DataFrame:
+        """One check's (``check=None``: every check's) statistic, p-value and verdict over
+        completed runs; ``with_detail`` adds the ``detail`` JSON column."""
         with self._reading("querying a check trend") as conn:
             return _queries.check_trend(conn, self.tables, monitor, check, model=model,
                                         segment=segment, start=_utc(start, name="start"),
-                                        end=_utc(end, name="end"))
+                                        end=_utc(end, name="end"), with_detail=with_detail)
 
     def coefficient_paths(self, monitor: str, *, model: str | None = None,
                           term: str | None = None, segment: str | None = None,
@@ -962,12 +963,14 @@ class HistoryStore:
 
     def verdict_history(self, monitor: str, *, criterion: str | None = None,
                         segment: str | None = None, start: dt.datetime | None = None,
-                        end: dt.datetime | None = None) -> pd.DataFrame:
-        """Which model was best in each run, and where that changed."""
+                        end: dt.datetime | None = None,
+                        with_detail: bool = False) -> pd.DataFrame:
+        """Which model was best in each run, and where that changed; ``with_detail`` adds
+        the ``detail`` JSON column (the family verdict, with its one-sentence summary)."""
         with self._reading("querying verdicts") as conn:
             return _queries.verdict_history(conn, self.tables, monitor, criterion=criterion,
                                             segment=segment, start=_utc(start, name="start"),
-                                            end=_utc(end, name="end"))
+                                            end=_utc(end, name="end"), with_detail=with_detail)
 
     def alerts(self, monitor: str | None = None, *, state: str | Sequence[str] | None = None,
                model: str | None = None, start: dt.datetime | None = None,
