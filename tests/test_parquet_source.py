@@ -245,3 +245,15 @@ def test_check_and_max_time_read_only_metadata(daily: Path) -> None:
     assert (summary.files, summary.rows) == (10, 480)
     assert summary.min_time == _at(0)
     assert source.max_time() == _at(9, 23) + dt.timedelta(minutes=30)
+
+
+def test_rows_without_a_time_are_never_delivered(tmp_path: Path) -> None:
+    table = _day_table(0, 10)
+    times = table.column("ts").to_pylist()
+    times[3] = times[7] = None
+    path = tmp_path / "gaps.parquet"
+    pq.write_table(table.set_column(0, "ts", pa.array(times, pa.timestamp("us"))), path)
+    source = ParquetSource(path, time_column="ts")
+    assert _rows(source.scan(["units sold"])).column(0).to_pylist() == [
+        0.0, 1.0, 2.0, 4.0, 5.0, 6.0, 8.0, 9.0]
+    assert _rows(source.scan(["units sold"], _at(0, 1))).num_rows == 6

@@ -205,23 +205,33 @@ class _OrderTracker:
         self.min_time: dt.datetime | None = None
         self.max_time: dt.datetime | None = None
 
-    def observe(self, times: pa.Array) -> None:
+    def observe(self, times: pa.Array) -> tuple[dt.datetime | None, dt.datetime | None]:
+        """Note a batch's time values; returns their (min, max) as aware UTC."""
         count = len(times)
         if count == 0:
-            return
+            return None, None
+        sorted_batch = False
         if self.check_order and self.in_order:
-            if count > 1 and not pc.all(pc.less_equal(times.slice(0, count - 1),
-                                                      times.slice(1))).as_py():
+            sorted_batch = count == 1 or bool(pc.all(pc.less_equal(
+                times.slice(0, count - 1), times.slice(1))).as_py())
+            if not sorted_batch or (self.last is not None
+                                    and pc.less(times[0], self.last).as_py()):
                 self.in_order = False
-            elif self.last is not None and pc.less(times[0], self.last).as_py():
-                self.in_order = False
-        low_high = pc.min_max(times)
-        low, high = as_utc_datetime(low_high["min"]), as_utc_datetime(low_high["max"])
+        if sorted_batch:  # in order: the ends are the extremes, no second pass needed
+            low, high = as_utc_datetime(times[0]), as_utc_datetime(times[count - 1])
+        else:
+            extremes = pc.min_max(times)
+            low, high = as_utc_datetime(extremes["min"]), as_utc_datetime(extremes["max"])
+        self.widen(low, high)
+        self.last = times[count - 1]
+        return low, high
+
+    def widen(self, low: dt.datetime | None, high: dt.datetime | None) -> None:
+        """Extend the observed time range."""
         if low is not None and (self.min_time is None or low < self.min_time):
             self.min_time = low
         if high is not None and (self.max_time is None or high > self.max_time):
             self.max_time = high
-        self.last = times[count - 1]
 
 
 class Scan(abc.ABC):

@@ -295,9 +295,11 @@ class ParquetSource:
                          estimated)
 
     def _time_filter(self, time_type: pa.DataType, start: dt.datetime | None,
-                     end: dt.datetime | None) -> ds.Expression:
+                     end: dt.datetime | None) -> ds.Expression | None:
+        # NULL times are dropped batch by batch (cheaper than a pushed-down is_valid,
+        # which pyarrow evaluates on every row even when the statistics show no nulls)
         field = ds.field(self.time_column)
-        expression = field.is_valid()
+        expression: ds.Expression | None = None
 
         def scalar(bound: dt.datetime) -> pa.Scalar:
             if pa.types.is_date(time_type):
@@ -310,9 +312,10 @@ class ParquetSource:
             return pa.scalar(bound, type=time_type)
 
         if start is not None:
-            expression = expression & (field >= scalar(start))
+            expression = field >= scalar(start)
         if end is not None:
-            expression = expression & (field < scalar(end))
+            upper = field < scalar(end)
+            expression = upper if expression is None else expression & upper
         return expression
 
     # ------------------------------------------------------------------ public API
@@ -467,7 +470,8 @@ class ParquetScan(Scan):
 
     def __init__(self, source: ParquetSource, columns: tuple[str, ...],
                  start: dt.datetime | None, end: dt.datetime | None, plans: list[_FilePlan],
-                 schema: pa.Schema, expression: ds.Expression, *, files_considered: int) -> None:
+                 schema: pa.Schema, expression: ds.Expression | None, *,
+                 files_considered: int) -> None:
         super().__init__(columns, start, end, time_column=source.time_column,
                          where=source.where)
         self._source = source
@@ -512,17 +516,24 @@ class ParquetScan(Scan):
             batches = plan.fragment.to_batches(
                 schema=self._schema, columns=self._read_columns, filter=self._expression,
                 batch_size=self._source.batch_rows, use_threads=True)
-            yield from batches
+            for batch in batches:
+                times = batch.column(self.time_column)
+                if times.null_count:
+                    batch = batch.filter(times.is_valid())
+                yield batch
         except (pa.ArrowException, OSError) as error:
             raise SourceError(f"cannot read Parquet file: {_describe_arrow_error(error)}",
                               where=f"{self.where}, file {plan.path!r}",
                               hint="the file is corrupt or half-written: replace it, or move "
                                    "it out of the folder", file=plan.path) from error
 
-    def _deliver(self, batch: pa.RecordBatch, tracker: _OrderTracker) -> pa.RecordBatch:
+    def _deliver(self, batch: pa.RecordBatch, tracker: _OrderTracker,
+                 file_tracker: _OrderTracker | None = None) -> pa.RecordBatch:
         time_index = batch.schema.get_field_index(self.time_column)
         times = utc_time_array(batch.column(time_index))
-        tracker.observe(times)
+        low, high = tracker.observe(times)
+        if file_tracker is not None:
+            file_tracker.widen(low, high)
         arrays = [times if name == self.time_column else batch.column(name)
                   for name in self.columns]
         return pa.RecordBatch.from_arrays(arrays, names=list(self.columns))
@@ -537,8 +548,7 @@ class ParquetScan(Scan):
             for batch in self._read_file(plan):
                 if batch.num_rows == 0:
                     continue
-                delivered = self._deliver(batch, tracker)
-                file_tracker.observe(batch.column(self.time_column))
+                delivered = self._deliver(batch, tracker, file_tracker)
                 rows += batch.num_rows
                 yield delivered
             self._file_rows[plan.path] = (rows, file_tracker.min_time, file_tracker.max_time)
