@@ -809,7 +809,7 @@ def evaluate_family(
         if shape in shapes:
             raise ConfigurationError(
                 f"candidates {shapes[shape]!r} and {name!r} are the same model after encoding "
-                f"(same design columns and intercept)", where=f"family candidates.{name}",
+                f"(same design columns and intercept)", where=f"family.candidates.{name}",
                 hint="remove one of them or change its terms")
         shapes[shape] = name
     factors = []
