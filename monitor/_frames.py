@@ -107,9 +107,57 @@ def as_table(data: TableInput) -> pd.DataFrame | pa.Table:
                       hint="pass a .csv or .parquet file")
 
 
+def _parquet_path(data: TableInput) -> Path | None:
+    """The path when ``data`` names an existing Parquet file or folder (read in batches)."""
+    if not isinstance(data, (str, Path)):
+        return None
+    path = Path(data)
+    if path.exists() and (path.suffix.lower() in (".parquet", ".pq") or path.is_dir()):
+        return path
+    return None
+
+
+def _parquet_dataset(path: Path) -> Any:
+    import pyarrow.dataset as pa_dataset
+
+    try:
+        return pa_dataset.dataset(path, format="parquet")
+    except (pa.ArrowInvalid, OSError) as error:
+        raise SourceError(f"cannot read {str(path)!r}: {str(error).splitlines()[0]}",
+                          where=str(path),
+                          hint="check that the file is complete and in the format its "
+                          "name says") from error
+
+
+def _parquet_chunk_source(path: Path, columns: Sequence[str] | None, chunk_rows: int) -> Any:
+    """Batches straight from the file: memory holds one chunk, whatever the file's size."""
+    dataset = _parquet_dataset(path)
+    if len(dataset.schema.names) == 0:
+        raise DataValidationError("the data have no columns", where="input",
+                                  hint="check the file")
+    names = [c for c in (columns if columns is not None else dataset.schema.names)
+             if c in dataset.schema.names]
+
+    def parquet_chunks() -> Iterator[Mapping[str, np.ndarray]]:
+        try:
+            for batch in dataset.to_batches(columns=names, batch_size=chunk_rows):
+                if batch.num_rows:
+                    yield arrow_to_columns(batch, names)
+        except (pa.ArrowInvalid, OSError) as error:
+            raise SourceError(f"cannot read {str(path)!r}: {str(error).splitlines()[0]}",
+                              where=str(path), hint="check that the file is complete") from error
+    return parquet_chunks
+
+
 def chunk_source(data: TableInput, columns: Sequence[str] | None = None,
                  chunk_rows: int = DEFAULT_CHUNK_ROWS) -> Any:
-    """A callable returning a fresh iterator of column chunks over ``data``."""
+    """A callable returning a fresh iterator of column chunks over ``data``.
+
+    A Parquet path is read batch by batch (only ``columns``), never whole.
+    """
+    parquet = _parquet_path(data)
+    if parquet is not None:
+        return _parquet_chunk_source(parquet, columns, chunk_rows)
     table = as_table(data)
     if table.shape[1] == 0 or (isinstance(table, pd.DataFrame) and table.empty and
                                 len(table.columns) == 0):
@@ -135,6 +183,9 @@ def chunk_source(data: TableInput, columns: Sequence[str] | None = None,
 
 
 def column_names(data: TableInput) -> list[str]:
+    parquet = _parquet_path(data)
+    if parquet is not None:
+        return list(_parquet_dataset(parquet).schema.names)
     table = as_table(data)
     if isinstance(table, pd.DataFrame):
         return [str(c) for c in table.columns]
