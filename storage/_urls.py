@@ -8,8 +8,8 @@ value goes through :func:`redact`.
 from __future__ import annotations
 
 import os
-from urllib.parse import quote, quote_plus
 from typing import Any
+from urllib.parse import quote, quote_plus
 
 import sqlalchemy as sa
 

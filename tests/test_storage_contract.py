@@ -10,7 +10,6 @@ from __future__ import annotations
 import datetime as dt
 import json
 import math
-import os
 import subprocess
 import sys
 import textwrap
