@@ -189,7 +189,7 @@ class PlantedEvent:
 
     ``size`` is in ``unit``; ``size_in_noise_sd`` restates it against the
     substation's noise (for a slope: noise SDs per standard deviation of the
-    regressor over a year, about 6.3 °C for temperature).  For
+    regressor over a year, about 6.1 °C for temperature).  For
     ``sensor_outliers`` the size is a range ``size``..``size_high`` applied on
     ``share_of_days`` of the days.
     """
@@ -231,7 +231,7 @@ EVENTS: tuple[PlantedEvent, ...] = (
         ramp_end=dt.date(2023, 9, 30),
         changes="temperature coefficient of the chosen model: -2.20 -> -1.75 MWh/day per °C "
                 "(the heating line pivots about 18 °C; the intercept falls by 8.1 MWh/day)",
-        size=0.45, unit="MWh/day per °C", size_in_noise_sd=0.95,
+        size=0.45, unit="MWh/day per °C", size_in_noise_sd=0.9,
         expected_signals=("coefficient_change", "level_shift"),
         possible_signals=("residual_drift",),
         story="Walls and roofs of the harbour flats are insulated over one summer, block by "
