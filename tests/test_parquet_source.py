@@ -62,6 +62,24 @@ def test_pruning_reads_only_the_partitions_in_the_window(daily: Path) -> None:
     assert table.column("ts")[-1].as_py() == _at(6) - dt.timedelta(minutes=30)
 
 
+def test_month_partitions_cover_their_whole_month(tmp_path: Path) -> None:
+    """A window starting mid-month keeps that month's folder and all its rows in the window."""
+    root = tmp_path / "monthly"
+    for month, first_day in (("2030-06", 0), ("2030-07", 30), ("2030-08", 61)):
+        folder = root / f"month={month}"
+        folder.mkdir(parents=True)
+        days = range(first_day, first_day + (30 if month == "2030-06" else 31))
+        pq.write_table(pa.concat_tables([_day_table(day, rows=2) for day in days]),
+                       folder / "part-0.parquet")
+    source = ParquetSource(root, time_column="ts", time_partition="month",
+                           time_partition_format="%Y-%m")
+    scan = source.scan(["ts"], _at(10), _at(40))  # 2030-06-11 .. 2030-07-11 (excluded)
+    table = _rows(scan)
+    assert scan.files_considered == 2  # August is pruned without opening it
+    assert table.num_rows == 30 * 2
+    assert table.column("ts")[0].as_py() == _at(10)
+
+
 def test_without_partition_pruning_file_statistics_skip_files(daily: Path) -> None:
     scan = ParquetSource(daily, time_column="ts").scan(["price"], _at(3, 12), _at(5))
     assert scan.files_considered == 10 and len(scan.files) == 2

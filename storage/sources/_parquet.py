@@ -69,6 +69,17 @@ def _describe_arrow_error(error: BaseException) -> str:
     return f"{type(error).__name__}: {text[0] if text else ''}"
 
 
+def _partition_end(first: dt.datetime, partition_format: str) -> dt.datetime:
+    """End (excluded) of the span a partition value covers: the next day, month or year,
+    after the finest calendar unit in its format (``%Y-%m`` covers a whole month)."""
+    if any(code in partition_format for code in ("%d", "%j")):
+        return first + dt.timedelta(days=1)
+    if any(code in partition_format for code in ("%m", "%b", "%B")):
+        year, month = (first.year + 1, 1) if first.month == 12 else (first.year, first.month + 1)
+        return first.replace(year=year, month=month, day=1)
+    return first.replace(year=first.year + 1, month=1, day=1)
+
+
 class ParquetSource:
     """Rows of a Parquet file, folder or Hive-partitioned dataset.
 
@@ -92,7 +103,9 @@ class ParquetSource:
     time_partition
         Name of a partition key holding the date of its rows (e.g. ``"day"``);
         partitions outside the window are pruned without opening their files.
-        The key's values are parsed with ``time_partition_format``.
+        The key's values are parsed with ``time_partition_format``; a partition
+        covers the day, month or year after the finest unit of that format
+        (``"%Y-%m"``: a whole month).
     name
         A short name for messages (default: the path).
     """
@@ -202,7 +215,7 @@ class ParquetSource:
         if day is None:
             return False
         day_start = dt.datetime(day.year, day.month, day.day, tzinfo=dt.UTC)
-        day_end = day_start + dt.timedelta(days=1)
+        day_end = _partition_end(day_start, self.time_partition_format)
         return (end is not None and day_start >= end) or (start is not None and day_end <= start)
 
     def _check_file(self, fragment: ds.ParquetFileFragment, dataset_schema: pa.Schema,
