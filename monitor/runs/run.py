@@ -158,11 +158,14 @@ def run_monitor(
             rows_read = rows_dropped = 0
             for segment in segments:
                 chunks = _chunk_source(scan, monitor, segment)
-                report = _evaluate(monitor, chunks)
+                chosen = history.chosen_model(monitor.name, segment) or \
+                    history.chosen_model(monitor.name) or monitor.family.chosen
+                report = _evaluate(monitor, chosen, chunks)
                 data = report.to_dict()
                 verdicts[segment] = data["verdict"]
-                rows_read += int(data.get("rows", {}).get("rows_read", 0))
-                rows_dropped += int(data.get("rows", {}).get("dropped_rows", 0))
+                counts = data.get("rows") or {}
+                rows_read += int(counts.get("rows_read", 0))
+                rows_dropped += int(counts.get("dropped_rows", 0))
                 _collect_rows(rows, report, data, monitor, segment)
             step("history")
             record.update(rows_read=scan.rows or rows_read, rows_dropped=rows_dropped,
@@ -239,14 +242,14 @@ def _chunk_source(scan: Any, monitor: MonitorSpec, segment: str
     return chunks
 
 
-def _evaluate(monitor: MonitorSpec, chunks: Callable[[], Iterator[Mapping[str, np.ndarray]]]
-              ) -> Any:
-    from ..stats.family import FamilySpec, evaluate_family
+def _evaluate(monitor: MonitorSpec, chosen: str,
+              chunks: Callable[[], Iterator[Mapping[str, np.ndarray]]]) -> Any:
+    from ..stats.family import evaluate_family, make_family_spec
 
     family = monitor.family
-    spec = FamilySpec(response=family.response, candidates=dict(family.candidates),
-                      chosen=family.chosen, criterion=family.criterion, alpha=family.alpha,
-                      margin=family.margin)
+    spec = make_family_spec(response=family.response, candidates=dict(family.candidates),
+                            chosen=chosen, criterion=family.criterion, alpha=family.alpha,
+                            margin=family.margin, where=f"monitors.{monitor.name}.family")
     return evaluate_family(spec, chunks, refinement_passes=1)
 
 
