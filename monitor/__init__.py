@@ -15,6 +15,11 @@ __version__ = "0.1.0"
 # public name -> module that defines it
 _EXPORTS = {
     "fit": "monitor._api",
+    "check_data": "monitor._checks_api",
+    "build_baseline": "monitor._checks_api",
+    "CheckReport": "monitor._checks_api",
+    "CheckResult": "monitor.stats.checks",
+    "BaselineSnapshot": "monitor.stats.drift",
     "FitResult": "monitor.stats.results",
     "Coefficient": "monitor.stats.results",
     "CategoricalSpec": "monitor.stats.formula",

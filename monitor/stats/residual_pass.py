@@ -117,7 +117,7 @@ class ModelLayout:
 
     ``own`` / ``own_offset``: the model's working design ``W = Z[:, own] + own_offset``
     (the offset turns centred columns back into uncentred ones for a model without
-    intercept), whose triangular factor is ``R``.  ``aux`` / ``aux_R``: the
+    intercept), whose triangular factor is ``R``.  ``aux`` / ``aux_triangular``: the
     model's columns with a constant first, for auxiliary regressions that need one.
     """
 
@@ -125,7 +125,7 @@ class ModelLayout:
     own_offset: FloatArray
     R: FloatArray
     aux: tuple[int, ...]
-    aux_R: FloatArray
+    aux_triangular: FloatArray
     union_columns: tuple[int, ...]
 
 
@@ -202,7 +202,7 @@ class PassTwoResult:
     reset_shift: FloatArray = field(default_factory=lambda: np.zeros(0))
     reset_scale: FloatArray = field(default_factory=lambda: np.zeros(0))
     zf: FloatArray = field(default_factory=lambda: np.zeros(0))            # Z'[f² f³] (q+1, 2, M)
-    ff: FloatArray = field(default_factory=lambda: np.zeros(0))            # (3, M): f2f2, f2f3, f3f3
+    ff: FloatArray = field(default_factory=lambda: np.zeros(0))            # f2f2, f2f3, f3f3
     fe: FloatArray = field(default_factory=lambda: np.zeros(0))            # (2, M)
     # influence
     influence_sigma2: FloatArray = field(default_factory=lambda: np.zeros(0))
@@ -488,7 +488,7 @@ def residual_pass(
         "bonferroni": np.array([stats.t.isf(0.05 / (2 * n_total), d) if d > 0 else np.inf
                                 for d in df_ext]),
     }
-    inverse_R = [solve_triangular(layout.R, np.eye(layout.R.shape[0]), lower=False)
+    inverse_triangular = [solve_triangular(layout.R, np.eye(layout.R.shape[0]), lower=False)
                  if layout.R.size else np.zeros((0, 0)) for layout in layouts]
     # time order and lags
     result.ordered = bool(in_time_order and time_column is not None)
@@ -539,7 +539,7 @@ def residual_pass(
     frozen_B = None
     baseline_parts = None
     if baseline is not None:
-        baseline_parts = baseline.pass_parts(design, state, factors)
+        baseline_parts = baseline.pass_parts(design)
         frozen_B = np.column_stack([
             _working_coefficients(state, f, np.asarray(mb.coefficients))
             for f, mb in zip(factors, baseline.models, strict=True)])
@@ -641,7 +641,7 @@ def residual_pass(
             W = Z[:, list(layout.own)]
             if layout.own_offset.any():
                 W = W + layout.own_offset
-            H = W @ inverse_R[index]
+            H = W @ inverse_triangular[index]
             h = np.einsum("ij,ij->i", H, H)
             e = E[:, index]
             result.max_leverage[index] = max(result.max_leverage[index], float(h.max()))
@@ -824,7 +824,7 @@ def _accumulate_frozen(result: PassTwoResult, F: FloatArray, X: FloatArray, Z: F
         W = Zb[:, list(parts.own[index])]
         if parts.own_offset[index].any():
             W = W + parts.own_offset[index]
-        H = W @ parts.inverse_R[index]
+        H = W @ parts.inverse_triangular[index]
         h0 = np.einsum("ij,ij->i", H, H)
         result.baseline_leverage_sum[index] += h0.sum()
         half_width = parts.t_critical[index] * parts.sigma[index] * np.sqrt(1.0 + h0)

@@ -36,7 +36,7 @@ def variance_inflation(result: PassTwoResult, model: int) -> CheckResult:
     columns = [c - 1 for c in layout.aux[1:]]
     if not columns:
         return not_applicable("vif", "the model has no terms besides the intercept", n)
-    R22 = layout.aux_R[1:, 1:]
+    R22 = layout.aux_triangular[1:, 1:]
     inverse = solve_triangular(R22, np.eye(R22.shape[0]), lower=False)
     vif = np.sum(R22 * R22, axis=0) * np.sum(inverse * inverse, axis=1)
     terms = {label(result, c): float(v) for c, v in zip(columns, vif, strict=True)}

@@ -113,8 +113,8 @@ def breusch_godfrey(result: PassTwoResult, model: int) -> CheckResult:
     if reason:
         return not_applicable("breusch_godfrey", reason, n)
     aux = list(layout.aux)
-    a = projection(layout.aux_R, result.ze[aux, model])
-    F = projection(layout.aux_R, result.z_lagged[aux, :, model])
+    a = projection(layout.aux_triangular, result.ze[aux, model])
+    F = projection(layout.aux_triangular, result.z_lagged[aux, :, model])
     S = _lagged_cross(result, model) - F.T @ F
     c = result.lag_sums[1:, model] - F.T @ a
     try:

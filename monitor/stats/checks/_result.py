@@ -192,7 +192,8 @@ CHECKS: dict[str, CheckSpec] = dict([
     _spec("shapiro_wilk", "normality", "W of Shapiro & Wilk on a seeded random sample of "
           "residuals (Royston's algorithm AS R94, via scipy.stats.shapiro)",
           "Royston's normalising approximation", "sample of at most 5000 rows (seed in detail); "
-          "3 ≤ n", "Shapiro, S. S., Wilk, M. B. (1965). Biometrika 52, 591-611; Royston, P. (1995). "
+          "3 ≤ n",
+          "Shapiro, S. S., Wilk, M. B. (1965). Biometrika 52, 591-611; Royston, P. (1995). "
           "Algorithm AS R94. Applied Statistics 44(4), 547-551."),
     _spec("anderson_darling", "normality", "A² of Anderson & Darling with mean and SD estimated "
           "(SD with ddof=1), on the same random sample as shapiro_wilk; A*² = A²(1 + 0.75/n + "
@@ -291,7 +292,7 @@ CHECKS: dict[str, CheckSpec] = dict([
           "Chow, G. C. (1960), second test. Econometrica 28(3), 591-605.", "baseline"),
     _spec("interval_coverage", "drift", "share of fresh rows inside the frozen model's 95 % "
           "prediction intervals", "exact two-sided binomial test against 0.95", "level 0.95",
-          "e.g. Draper, N. R., Smith, H. (1998). Applied Regression Analysis, 3rd ed., §3.", 
+          "e.g. Draper, N. R., Smith, H. (1998). Applied Regression Analysis, 3rd ed., §3.",
           "baseline"),
     _spec("input_drift", "drift", "the largest two-sample KS D over the model's regressors "
           "(each with its p-value and PSI in detail)", "Bonferroni over the regressors: "

@@ -14,7 +14,6 @@ from typing import TYPE_CHECKING
 
 from scipy import stats
 
-from ..changepoint import estimate_change
 from ._common import degenerate_residuals, tested
 from ._result import CheckResult, not_applicable, plain
 
@@ -37,6 +36,8 @@ def cusum(result: PassTwoResult, model: int) -> CheckResult:
         return not_applicable("cusum", reason, n)
     sigma2 = float(result.sum_squares[model]) / (n - p)
     statistic = float(result.cusum_max[model]) / math.sqrt(n * sigma2)
+    from ..changepoint import estimate_change  # changepoint imports this package's _result
+
     change = estimate_change(result, model)
     detail = {
         "largest_at_row": int(result.cusum_argmax[model]),

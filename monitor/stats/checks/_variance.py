@@ -38,7 +38,7 @@ WHITE_RANK_TOLERANCE = 1e-10
 def _bp_parts(result: PassTwoResult, model: int) -> tuple[float, float, int]:
     layout = result.layouts[model]
     aux = list(layout.aux)
-    a = projection(layout.aux_R, result.zu[aux, model])
+    a = projection(layout.aux_triangular, result.zu[aux, model])
     explained = float(a[1:] @ a[1:])
     sum_u = float(result.zu[0, model])
     total = float(result.sum_u2[model]) - sum_u * sum_u / result.n
