@@ -21,7 +21,7 @@ import numpy as np
 from ..errors import DataValidationError, ModelFitError
 from .engine import LeastSquaresState, SubsetFactor
 from .formula import CategoricalSpec, Design, ParsedFormula, _as_text, _level_order, build_design
-from .refine import GradientSums, accurate_residuals, correction
+from .refine import GradientSums, accurate_residuals, correction, split
 from .results import FitResult, make_fit_result
 
 __all__ = [
@@ -31,6 +31,8 @@ __all__ = [
     "derive_factor",
     "fit_formulas",
     "pass_one",
+    "needs_refinement",
+    "predicted_error",
     "refine_factors",
     "result_of",
 ]
@@ -147,6 +149,46 @@ def derive_factor(one: PassOne, model: int) -> SubsetFactor:
     return one.state.subset(indices, has_intercept)
 
 
+def predicted_error(factor: SubsetFactor) -> float:
+    """A first-order estimate of the relative error the unrefined QR fit can carry.
+
+    The largest of: ``u·(κ + κ²·ρ)`` for the working coefficients (κ the condition
+    number of the working factor, ρ = ‖r‖/(‖R‖·‖w‖), Björck 1996 §1.4 and §2.4),
+    amplified by the cancellation in mapping them back to original units (an
+    intercept far from the data's centre); and ``u·TSS/SSR`` for the residual sum
+    of squares taken from the factor (a fit with R² near 1).
+    """
+    p = factor.n_parameters
+    if p == 0:
+        return 0.0
+    singular = np.linalg.svd(factor.R, compute_uv=False)
+    if singular[-1] <= 0.0 or not np.all(np.isfinite(singular)):
+        return np.inf
+    kappa = float(singular[0] / singular[-1])
+    working = np.linalg.solve(factor.R, factor.qty) if p else np.zeros(0)
+    size = float(np.max(np.abs(working)))
+    residual = np.sqrt(factor.ssr) * factor.response_scale
+    rho = residual / (float(singular[0]) * size) if size > 0 else np.inf
+    with np.errstate(divide="ignore", invalid="ignore"):
+        amplification = np.max(np.abs(factor.transform).sum(axis=1) * size /
+                               np.abs(factor.coefficients))
+        total = factor.ssr + factor.explained
+        ssr_part = total / factor.ssr if factor.ssr > 0 else np.inf
+    coefficient_part = (kappa + kappa**2 * rho) * float(amplification)
+    estimate = _UNIT_ROUNDOFF * max(coefficient_part, float(ssr_part))
+    return estimate if np.isfinite(estimate) else np.inf
+
+
+#: Refine a model only when its unrefined fit may be off by more than this
+#: (relative): about 100 units of round-off, i.e. the last two digits of a double.
+REFINE_ABOVE = 1e-14
+
+
+def needs_refinement(factor: SubsetFactor) -> bool:
+    """Whether the refinement read can change the fit beyond the last digits of a double."""
+    return predicted_error(factor) > REFINE_ABOVE
+
+
 def refine_factors(
     chunks: ChunkSource,
     design: Design,
@@ -166,6 +208,7 @@ def refine_factors(
     accepted = [0] * len(factors)
     previous = [np.inf] * len(factors)
     active = [f.n_parameters > 0 for f in factors]
+    contraction = [min(predicted_error(f), 1.0) for f in factors]
     for _ in range(max_passes):
         if not any(active):
             break
@@ -174,12 +217,16 @@ def refine_factors(
             encoded = design.encode(chunk)
             if len(encoded.y) == 0:
                 continue
+            union_parts = split(encoded.X)  # each column split once, shared by the models
             for m, factor in enumerate(factors):
                 if not active[m]:
                     continue
-                X = encoded.X[:, list(factor.columns)]
-                high, low = accurate_residuals(X, encoded.y, coefficients[m], factor.has_intercept)
-                sums[m].add(X, high, low, factor.has_intercept)
+                columns = list(factor.columns)
+                X = encoded.X[:, columns]
+                parts = (union_parts[0][:, columns], union_parts[1][:, columns])
+                high, low = accurate_residuals(X, encoded.y, coefficients[m], factor.has_intercept,
+                                               parts)
+                sums[m].add(X, high, low, factor.has_intercept, parts)
         for m, factor in enumerate(factors):
             if not active[m]:
                 continue
@@ -195,7 +242,9 @@ def refine_factors(
             ssr[m] = max(sums[m].ssr - float(step @ gradient), 0.0)
             accepted[m] += 1
             previous[m] = size
-            if size <= _UNIT_ROUNDOFF:
+            # each step shrinks the error by about the predicted error of the plain
+            # fit; stop once what the next step could still remove is below round-off
+            if size <= _UNIT_ROUNDOFF or size * contraction[m] <= _UNIT_ROUNDOFF:
                 active[m] = False
     return coefficients, ssr, accepted
 
@@ -283,13 +332,17 @@ def fit_formulas(
     design = _design_over_all_chunks(chunks, formulas, categorical)
     one = pass_one(chunks(), formulas, design=design, categorical=categorical, strict=strict)
     factors = [derive_factor(one, m) for m in range(len(one.design.models))]
-    if refinement_passes > 0:
-        coefficients, ssr, steps = refine_factors(chunks, one.design, factors,
-                                                  max_passes=refinement_passes)
-    else:
-        coefficients = [f.coefficients for f in factors]
-        ssr = [f.ssr for f in factors]
-        steps = [0] * len(factors)
+    coefficients = [f.coefficients for f in factors]
+    ssr = [f.ssr for f in factors]
+    steps = [0] * len(factors)
+    needing = [m for m, f in enumerate(factors) if refinement_passes > 0 and needs_refinement(f)]
+    if needing:
+        refined = refine_factors(chunks, one.design, [factors[m] for m in needing],
+                                 max_passes=refinement_passes)
+        for position, m in enumerate(needing):
+            coefficients[m] = refined[0][position]
+            ssr[m] = refined[1][position]
+            steps[m] = refined[2][position]
     results = [
         result_of(one, m, factors[m], coefficients=coefficients[m], ssr=ssr[m],
                   refinement_steps=steps[m])

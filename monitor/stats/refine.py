@@ -40,6 +40,7 @@ __all__ = [
     "accurate_residuals",
     "accurate_sum",
     "correction",
+    "split",
     "two_product",
     "two_sum",
 ]
@@ -55,17 +56,30 @@ def two_sum(a: FloatArray, b: FloatArray) -> tuple[FloatArray, FloatArray]:
     return s, e
 
 
+def split(a: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Dekker's split: ``a == high + low`` with each half of 26 significant bits."""
+    return _split(a)
+
+
 def _split(a: FloatArray) -> tuple[FloatArray, FloatArray]:
     c = _SPLITTER * a
     high = c - (c - a)
     return high, a - high
 
 
-def two_product(a: FloatArray, b: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """``p + e == a * b`` exactly, with ``p = fl(a * b)`` (Dekker)."""
+def two_product(
+    a: FloatArray, b: FloatArray,
+    a_parts: tuple[FloatArray, FloatArray] | None = None,
+    b_parts: tuple[FloatArray, FloatArray] | None = None,
+) -> tuple[FloatArray, FloatArray]:
+    """``p + e == a * b`` exactly, with ``p = fl(a * b)`` (Dekker).
+
+    ``a_parts``/``b_parts`` are Dekker splits computed before (see :func:`split`),
+    so that an operand used many times is split once.
+    """
     p = a * b
-    a_high, a_low = _split(a)
-    b_high, b_low = _split(b)
+    a_high, a_low = _split(a) if a_parts is None else a_parts
+    b_high, b_low = _split(b) if b_parts is None else b_parts
     e = ((a_high * b_high - p) + a_high * b_low + a_low * b_high) + a_low * b_low
     return p, e
 
@@ -90,12 +104,14 @@ def accurate_sum(values: FloatArray) -> tuple[float, float]:
 
 
 def accurate_residuals(
-    X: FloatArray, y: FloatArray, coefficients: FloatArray, has_intercept: bool
+    X: FloatArray, y: FloatArray, coefficients: FloatArray, has_intercept: bool,
+    X_parts: tuple[FloatArray, FloatArray] | None = None,
 ) -> tuple[FloatArray, FloatArray]:
     """Residuals ``y − Xb`` as pairs ``(high, low)`` accurate to about ``u²·Σ|x b|``.
 
     ``X`` holds the model's own columns (no intercept column); ``coefficients``
-    has the intercept first when ``has_intercept``.
+    has the intercept first when ``has_intercept``; ``X_parts`` optionally its
+    :func:`split`.
     """
     high = np.array(y, dtype=np.float64, copy=True)
     low = np.zeros_like(high)
@@ -105,7 +121,9 @@ def accurate_residuals(
         low += error
         slopes = coefficients[1:]
     for j, b in enumerate(slopes):
-        product, product_error = two_product(X[:, j], np.full_like(high, -b))
+        column_parts = None if X_parts is None else (X_parts[0][:, j], X_parts[1][:, j])
+        minus_b = np.float64(-b)
+        product, product_error = two_product(X[:, j], minus_b, column_parts, _split(minus_b))
         high, sum_error = two_sum(high, product)
         low += product_error + sum_error
     total = high + low
@@ -125,15 +143,18 @@ class GradientSums:
         self.high = np.zeros(self.n_parameters)
         self.low = np.zeros(self.n_parameters)
 
-    def add(self, X: FloatArray, r_high: FloatArray, r_low: FloatArray, has_intercept: bool) -> None:
+    def add(self, X: FloatArray, r_high: FloatArray, r_low: FloatArray, has_intercept: bool,
+            X_parts: tuple[FloatArray, FloatArray] | None = None) -> None:
         """Accumulate one chunk (``X`` the model's columns, residual pairs from
-        :func:`accurate_residuals`)."""
+        :func:`accurate_residuals`, ``X_parts`` optionally the :func:`split` of ``X``)."""
         position = 0
         if has_intercept:
             self._add_entry(0, r_high, r_low)
             position = 1
+        r_parts = _split(r_high)
         for j in range(X.shape[1]):
-            product, error = two_product(X[:, j], r_high)
+            column_parts = None if X_parts is None else (X_parts[0][:, j], X_parts[1][:, j])
+            product, error = two_product(X[:, j], r_high, column_parts, r_parts)
             high, low = accurate_sum(product)
             low += float(np.sum(error + X[:, j] * r_low))
             self._add_pair(position + j, high, low)
