@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import dataclasses
 from typing import Any
 
 from monitor.cli._history import add_monitor_arguments, instant, open_monitor
@@ -38,7 +37,7 @@ def run(options: argparse.Namespace) -> int:
     finally:
         store.close()
     if options.format == "json":
-        emit_json(dataclasses.asdict(changes))
+        emit_json(changes.to_dict())
         return EXIT_OK
     emit_text(f"What changed in {monitor.name}: night of {_day(changes.reference_night)} "
               f"against night of {_day(changes.latest_night)}")

@@ -23,13 +23,14 @@ The reference night is the last completed night before ``since``; without
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from ._views import nights_by_run, plain_value
+from ._views import json_value, nights_by_run, plain_value
 
 __all__ = ["AlertSighting", "BestChange", "ChangeEstimate", "Changes", "CheckMove",
            "CoefficientMove", "what_changed"]
@@ -119,6 +120,10 @@ class Changes:
     checks: tuple[CheckMove, ...]
     coefficients: tuple[CoefficientMove, ...]
     change_estimates: tuple[ChangeEstimate, ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON data: instants as ISO 8601 UTC strings, non-finite numbers as None."""
+        return json_value(dataclasses.asdict(self))  # type: ignore[no-any-return]
 
 
 def _log10_p(p: float | None) -> float | None:

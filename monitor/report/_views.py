@@ -79,16 +79,17 @@ def _instant_text(value: dt.datetime) -> str:
     return value.astimezone(dt.UTC).isoformat().replace("+00:00", "Z")
 
 
-def _json_value(value: Any) -> Any:
+def json_value(value: Any) -> Any:
+    """``value`` as strict JSON data (instants as ISO 8601 UTC with ``Z``, NaN/inf as None)."""
     value = plain_value(value)
     if isinstance(value, dt.datetime):
         return _instant_text(value)
     if isinstance(value, float) and not math.isfinite(value):
         return None
     if isinstance(value, Mapping):
-        return {str(k): _json_value(v) for k, v in value.items()}
+        return {str(k): json_value(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
-        return [_json_value(v) for v in value]
+        return [json_value(v) for v in value]
     return value
 
 
@@ -98,7 +99,7 @@ def view_to_json(view: View) -> dict[str, Any]:
     Instants are ISO 8601 strings in UTC (``Z``); missing numbers are null.
     """
     return {"view": view.name, "title": view.title, "columns": list(view.columns),
-            "rows": [{k: _json_value(v) for k, v in record.items()}
+            "rows": [{k: json_value(v) for k, v in record.items()}
                      for record in view.records()],
             "notes": list(view.notes)}
 
@@ -112,7 +113,7 @@ def view_to_csv(view: View) -> str:
     for row in view.rows:
         cells = []
         for value in row:
-            value = _json_value(value)
+            value = json_value(value)
             if value is None:
                 cells.append("")
             elif isinstance(value, float):
