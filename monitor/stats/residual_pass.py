@@ -196,8 +196,9 @@ class PassTwoResult:
     white_columns: tuple[int, ...] = ()
     white_pairs: tuple[tuple[int, int], ...] = ()
     white_skip: str | None = None
-    white_zz: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
-    white_zu: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
+    white_factor: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))  # TSQR of [W2 | u]
+    white_centre: FloatArray = field(default_factory=lambda: np.zeros(0))
+    white_spread: FloatArray = field(default_factory=lambda: np.zeros(0))
     # RESET: f = (ŷ − reset_shift)/reset_scale; sums with f², f³
     reset_shift: FloatArray = field(default_factory=lambda: np.zeros(0))
     reset_scale: FloatArray = field(default_factory=lambda: np.zeros(0))
@@ -464,8 +465,14 @@ def residual_pass(
         result.white_columns = white_columns
         result.white_pairs = tuple((a, b) for i, a in enumerate(white_columns)
                                    for b in white_columns[i:])
-        result.white_zz = np.zeros((width, width))
-        result.white_zu = np.zeros((width, M))
+        result.white_factor = np.zeros((0, width + M))
+        # standardise the first-order columns with their exact means and SDs (from pass 1),
+        # so squares and cross-products are not dominated by offsets
+        R_state = state.square_factor()
+        centred_ss = np.sum(R_state[1:, 1:-1] ** 2, axis=0)
+        spread = np.sqrt(centred_ss / n_total)
+        result.white_centre = means[1:-1][list(white_columns)]
+        result.white_spread = np.where(spread > 0, spread, 1.0)[list(white_columns)]
     elif white_columns:
         result.white_skip = (f"the family's second-order design would have {width} columns "
                              f"(limit {options.white_max_columns})")
@@ -612,15 +619,17 @@ def residual_pass(
         # ---- White
         if result.white_pairs:
             cols = [1 + c for c in result.white_columns]
-            first = Z[:, cols]
-            a_idx = [1 + a for a, _ in result.white_pairs]
-            b_idx = [1 + b for _, b in result.white_pairs]
-            W2 = np.empty((m, 1 + len(cols) + len(a_idx)))
+            k = len(cols)
+            where = {c: i for i, c in enumerate(result.white_columns)}
+            a_idx = [1 + where[a] for a, _ in result.white_pairs]
+            b_idx = [1 + where[b] for _, b in result.white_pairs]
+            W2 = np.empty((m, 1 + k + len(a_idx) + M))
             W2[:, 0] = 1.0
-            W2[:, 1:1 + len(cols)] = first
-            np.multiply(Z[:, a_idx], Z[:, b_idx], out=W2[:, 1 + len(cols):])
-            result.white_zz += W2.T @ W2
-            result.white_zu += W2.T @ U
+            np.subtract(Z[:, cols], result.white_centre, out=W2[:, 1:1 + k])
+            W2[:, 1:1 + k] /= result.white_spread
+            np.multiply(W2[:, a_idx], W2[:, b_idx], out=W2[:, 1 + k:1 + k + len(a_idx)])
+            W2[:, 1 + k + len(a_idx):] = U
+            result.white_factor = np.linalg.qr(np.vstack([result.white_factor, W2]), mode="r")
         # ---- RESET
         fitted = (y_centred + state.shift[-1])[:, None] - E
         F = (fitted - result.reset_shift) / np.where(result.reset_scale > 0, result.reset_scale, 1)
