@@ -24,7 +24,8 @@ def test_a_good_family_keeps_its_arguments_and_defaults():
 
 
 @pytest.mark.parametrize(("changes", "where", "message"), [
-    ({"chosen": "windy"}, "family.chosen", "'windy' is not one of the candidates.*'base', 'weather'"),
+    ({"chosen": "windy"}, "family.chosen",
+     "'windy' is not one of the candidates.*'base', 'weather'"),
     ({"candidates": {"base": "load ~ temperature"}}, "family.candidates", "at least 2"),
     ({"candidates": GOOD | {"other": "demand ~ temperature"}}, "family.candidates.other",
      "models 'demand'.*response is 'load'"),

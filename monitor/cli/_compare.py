@@ -56,9 +56,9 @@ def format_report(report: FamilyReport) -> str:
              f"{spec.alpha:g})"]
     rows = report.rows
     if rows is not None:
-        lines.append(f"rows       {rows.rows_used:,} used by every candidate, {rows.dropped_rows:,} "
-                     "left out (common rows: a row unusable for one candidate is left out for "
-                     "all)")
+        lines.append(f"rows       {rows.rows_used:,} used by every candidate, "
+                     f"{rows.dropped_rows:,} left out (common rows: a row unusable for one "
+                     "candidate is left out for all)")
         for column, count in rows.dropped_by_column.items():
             lines.append(f"           {column}: {count:,} rows with missing, non-finite or "
                          "unseen values")
@@ -112,7 +112,8 @@ def format_report(report: FamilyReport) -> str:
          else "chosen model's overall F-test", fmt(verdict.chosen_f_pvalue)],
     ]
     if verdict.nested_direction is not None:
-        facts.append([f"partial F-test, best vs chosen ({verdict.nested_direction.replace('_', ' ')})",
+        direction = verdict.nested_direction.replace("_", " ")
+        facts.append([f"partial F-test, best vs chosen ({direction})",
                       fmt(verdict.nested_f_pvalue)])
     lines.append(render_table(["", ""], facts, numeric=[False, False]).split("\n", 2)[2])
     lines.append("")
