@@ -747,6 +747,19 @@ class HistoryStore:
 
     # ------------------------------------------------------------------ alerts and outbox
 
+    def record_alerts(self, monitor: str, alerts: Iterable[AlertRow | Mapping[str, Any]], *,
+                      now: dt.datetime | None = None) -> dict[str, int]:
+        """Insert or update alerts seen outside a run (e.g. missed scheduled runs).
+
+        Same rules as the alerts of :meth:`complete_run` (stable key, one event
+        per sighting, ``state=None`` keeps people's state), with no run id, in
+        one transaction.  Returns alert key -> ``alert_id``.
+        """
+        rows = coerce_records(AlertRow, alerts, argument="alerts")
+        monitor = _check_name(monitor, name="monitor")
+        with self._transaction(f"recording alerts of {monitor!r}") as conn:
+            return self._upsert_alerts(conn, monitor, None, rows, _now(now))
+
     def set_alert_state(self, alert_id: int, state: str, *, actor: str,
                         snooze_until: dt.datetime | None = None, note: str | None = None,
                         now: dt.datetime | None = None) -> None:
