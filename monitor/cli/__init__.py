@@ -29,6 +29,7 @@ __all__ = ["COMMAND_MODULES", "build_parser", "main"]
 #: modules that register a sub-command, in the order ``--help`` lists them
 COMMAND_MODULES = ["_fit", "_check", "_validate", "_promote", "_annotate", "_store", "_compare"]
 COMMAND_MODULES += ["_history", "_report", "_changes"]
+COMMAND_MODULES += ["_run", "_serve", "_status", "_backfill"]
 
 
 def build_parser() -> argparse.ArgumentParser:
