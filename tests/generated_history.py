@@ -6,7 +6,8 @@ writes ``nights`` runs of an invented monitor through the public writer
 rows a nightly run stores: long-form metrics per candidate (n, r_squared, aic,
 delta, weight, ...), coefficients with confidence bounds, one verdict row per
 segment with the family verdict as detail, check rows whose ``detail`` carries
-the arrays the report draws (see ``monitor/report/_evidence.py``), alerts from
+the arrays the report draws, shaped like the real checks' details (see
+``monitor/report/_evidence.py``), alerts from
 the night the planted change shows up, a promotion and a note.
 
 The story (invented): candidate ``"mid"`` is chosen; from night ``change_night``
@@ -157,27 +158,38 @@ def _check_row(rng: np.random.Generator, check: str, model: str, segment: str,
         detail["forecast_errors"] = {"at": [a.isoformat() for a in at[::3]],
                                      "error": (residual[::3] + 0.5).tolist()}
     elif check == "cusum":
-        count = 60
+        # shaped like the real check: a thinned raw path S_k of the residuals, the change
+        # estimate around it, and the statistic max|S_k| / sqrt(n sigma^2)
+        count, scale = 60, 2.0 * math.sqrt(718)
         at = [slot - dt.timedelta(days=30) + dt.timedelta(hours=12 * i) for i in range(count)]
         steps = rng.normal(0, 0.12, count) + (np.r_[np.zeros(30), np.full(30, 0.1)]
                                               if changed else 0.0)
-        path = np.cumsum(steps)
-        detail.update(path=path.tolist(), path_at=[a.isoformat() for a in at], bound=1.358)
+        scaled = np.cumsum(steps)
+        largest = int(np.argmax(np.abs(scaled)))
+        rows = [12 * i for i in range(count)]
+        statistic = float(abs(scaled[largest]))
+        change_at = 30 if changed else int(rng.integers(5, 55))
+        detail.update(largest_at_row=rows[largest], largest_at_key=at[largest].isoformat(),
+                      critical_values={"1%": 1.63, "5%": 1.36, "10%": 1.22},
+                      change={"row": rows[change_at], "key": at[change_at].isoformat(),
+                              "statistic": 1.0, "path_rows": rows,
+                              "path_values": (scaled * scale).tolist(),
+                              "path_keys": [a.isoformat() for a in at]})
         if changed:
-            detail.update(change_index=30, change_at=at[30].isoformat())
-            p_value, statistic = 1e-4 / (1 + nights_since_change), 2.4
+            p_value = 1e-4 / (1 + nights_since_change)
     elif check == "psi":
-        edges = np.linspace(-4, 4, 11)
+        edges = np.linspace(-3.2, 3.2, 9)  # interior edges of 10 bins, as the real check
         base = np.full(10, 0.1)
         fresh = np.array([0.02, 0.04, 0.06, 0.08, 0.1, 0.12, 0.14, 0.16, 0.14, 0.14]) \
             if changed else base + rng.normal(0, 0.005, 10)
-        detail["bins"] = {"edges": edges.tolist(), "baseline_share": base.tolist(),
-                          "fresh_share": fresh.tolist()}
+        detail.update(bins=10, edges=edges.tolist(), baseline_shares=base.tolist(),
+                      fresh_shares=fresh.tolist())
         p_value = None if not changed else 0.003
     elif check == "cooks_distance":
         detail["top_rows"] = [{"key": HOSTILE if (hostile and i == 2) else f"row-{i}",
                                "cooks_distance": 0.2 / (i + 1)} for i in range(6)]
-        detail["cutoffs"] = {"4/n": 4 / 718}
+        detail["cut_offs"] = {"cooks_4_over_n": 4 / 718, "cooks_f_median": 0.84,
+                              "cooks_1": 1.0, "leverage_2p_over_n": 6 / 718}
         p_value = None
     verdict = "pass"
     if p_value is not None and p_value < 0.01:

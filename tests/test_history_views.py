@@ -236,8 +236,9 @@ def test_what_changed_compares_the_last_night_before_since_with_the_latest(histo
                                                                          rel=1e-12)
     largest = changes.coefficients[0]
     assert largest.term == "temp" and largest.shift_in_std_errors < -5
-    assert {e.change_at for e in changes.change_estimates} == \
-        {(outline.nights[-1] - dt.timedelta(days=15)).isoformat()}  # planted: row 30, 12 h apart
+    # planted: the 31st point of the thinned path, 12 h apart, rows 12 apart
+    assert {(e.change_at, e.change_index) for e in changes.change_estimates} == \
+        {((outline.nights[-1] - dt.timedelta(days=15)).isoformat(), 360)}
 
 
 # ---------------------------------------------------------------------------- command line

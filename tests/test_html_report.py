@@ -18,7 +18,7 @@ import pytest
 from generated_history import HOSTILE, build_history
 
 from monitor.cli import main
-from monitor.report import CAUTIONS, render_report, write_report
+from monitor.report import CAUTIONS, render_report
 from storage.history import HistoryStore
 
 NOW = dt.datetime(2025, 2, 1, 7, 0, tzinfo=dt.UTC)
@@ -155,15 +155,15 @@ def test_hostile_names_and_messages_are_shown_as_text(tmp_path: Path):
     assert page.count(escaped) >= 5  # title, heading, term panel, row key, alert message, note
 
 
-def test_write_report_and_the_report_command(history, tmp_path: Path, capsys):
-    store, outline, _page, folder = history
-    path = write_report(store, outline.monitor, tmp_path / "out" / "r.html", now=NOW)
-    assert path.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+def test_the_report_command_writes_the_file_with_the_specs_description(history, tmp_path: Path,
+                                                                       capsys):
+    _store, outline, _page, folder = history
     spec = folder / "spec.toml"
     spec.write_text(SPEC.format(monitor=outline.monitor), encoding="utf-8")
-    target = tmp_path / "cli.html"
+    target = tmp_path / "new-folder" / "cli.html"
     assert main(["report", str(spec), "--monitor", outline.monitor, "--out", str(target)]) == 0
     page = target.read_text(encoding="utf-8")
+    assert page.startswith("<!DOCTYPE html>")
     assert "<code>y ~ temp * wind</code>" in page  # from the spec: what the monitor watches
     assert main(["report", str(spec), "--monitor", outline.monitor, "--out",
                  str(tmp_path / "r.pdf")]) == 2

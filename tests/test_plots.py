@@ -22,6 +22,7 @@ from generated_history import HOSTILE, build_history
 from matplotlib.collections import PolyCollection
 
 from monitor.report import _plots
+from monitor.report._evidence import night_evidence
 from monitor.report._figures import alert_marks, gap_timeline
 from monitor.report._plots import artist_by_gid
 from storage.history import HistoryStore
@@ -134,22 +135,28 @@ def test_coefficient_paths_draw_estimates_and_bands_as_stored(history):
             assert (day, low) in inside and (day, high) in inside
 
 
-def test_cusum_figure_draws_the_stored_path_bounds_and_change_date(history):
+def test_cusum_figure_draws_the_stored_path_on_the_statistics_scale_with_the_change(history):
     store, outline = history
     checks = store.check_trend(outline.monitor, "cusum", model="mid", segment="",
                                with_detail=True)
-    detail = checks["detail"].iloc[-1]
-    figure = _plots.cusum_figure(detail["path"], at=detail["path_at"], bound=detail["bound"],
-                                 change_index=detail["change_index"],
-                                 change_at=detail["change_at"])
-    at = [dt.datetime.fromisoformat(a) for a in detail["path_at"]]
+    detail, statistic = checks["detail"].iloc[-1], checks["statistic"].iloc[-1]
+    trace = night_evidence(checks, model="mid", segment="").cusum
+    figure = _plots.cusum_figure(trace.path, at=trace.at, bound=trace.bound,
+                                 change_index=trace.change_index, change_at=trace.change_at)
+    change = detail["change"]
+    raw = np.array(change["path_values"])
+    largest = change["path_rows"].index(detail["largest_at_row"])
+    at = [dt.datetime.fromisoformat(a) for a in change["path_keys"]]
     x, y = xy(figure, "cusum-path")
     np.testing.assert_array_equal(x, days(at))
-    np.testing.assert_array_equal(y, detail["path"])
-    np.testing.assert_array_equal(xy(figure, "bound-upper")[1], np.full(len(at), 1.358))
-    np.testing.assert_array_equal(xy(figure, "bound-lower")[1], np.full(len(at), -1.358))
-    change = artist_by_gid(figure, "change").get_xdata()[0]
-    assert change == days([dt.datetime.fromisoformat(detail["change_at"])])[0]
+    # the stored statistic is max|S_k| / sqrt(n sigma^2): the same division puts the path on
+    # the statistic's scale, where the path's largest value IS the statistic
+    np.testing.assert_allclose(y, raw / (abs(raw[largest]) / statistic), rtol=1e-15)
+    assert abs(y[largest]) == pytest.approx(statistic, rel=1e-15)
+    np.testing.assert_array_equal(xy(figure, "bound-upper")[1], np.full(len(at), 1.36))
+    np.testing.assert_array_equal(xy(figure, "bound-lower")[1], np.full(len(at), -1.36))
+    line = artist_by_gid(figure, "change").get_xdata()[0]
+    assert line == days([dt.datetime.fromisoformat(change["key"])])[0]
 
 
 def test_cusum_figure_without_times_uses_row_positions_and_the_change_index():
@@ -179,14 +186,16 @@ def test_night_views_draw_the_stored_sample_bins_and_top_rows(history):
     x, y = xy(figure, "errors-by-fitted")
     np.testing.assert_array_equal(x, sample["fitted"])
     np.testing.assert_array_equal(y, sample["residual"])
-    bins = last.loc["psi", "detail"]["bins"]
-    figure = _plots.error_bins_figure(bins["edges"], bins["baseline_share"], bins["fresh_share"])
+    bins = last.loc["psi", "detail"]
+    figure = _plots.error_bins_figure(bins["edges"], bins["baseline_shares"],
+                                      bins["fresh_shares"])
     x, y = xy(figure, "baseline-share")
-    np.testing.assert_array_equal(x, bins["baseline_share"])
+    np.testing.assert_array_equal(x, bins["baseline_shares"])
     np.testing.assert_array_equal(y, np.arange(10))
-    np.testing.assert_array_equal(xy(figure, "fresh-share")[0], bins["fresh_share"])
+    np.testing.assert_array_equal(xy(figure, "fresh-share")[0], bins["fresh_shares"])
     tick_labels = [t.get_text() for t in figure.axes[0].get_yticklabels()]
-    assert tick_labels[0] == "-4 to -3.2" and tick_labels[-1] == "3.2 to 4"
+    assert tick_labels[0] == "below -3.2" and tick_labels[1] == "-3.2 to -2.4"
+    assert tick_labels[-1] == "3.2 and above"
     top = last.loc["cooks_distance", "detail"]["top_rows"]
     figure = _plots.influential_rows_figure([r["key"] for r in top],
                                             [r["cooks_distance"] for r in top],

@@ -12,10 +12,10 @@ monitor and lists, from stored values only:
   ``(estimate_latest − estimate_reference) / std_error_reference``, the
   reference night's standard error.  Nightly windows usually overlap, so the two
   estimates are not independent and this is a yardstick, not a test;
-- the estimated change date, as the ``cusum`` check of the latest night stored
-  it (``detail["change_at"]``, or ``detail["change_index"]`` into
-  ``detail["path_at"]``).  The estimate itself is computed by the nightly run;
-  this module only presents it.
+- the estimated change, as the ``cusum`` check of the latest night stored it
+  (``detail["change"]``: the row and its key, from
+  ``monitor.stats.changepoint.estimate_change``).  The estimate is computed by
+  the nightly run; this module only presents it.
 
 The reference night is the last completed night before ``since``; without
 ``since`` (or with no night before it) it is the first night on record.
@@ -95,7 +95,12 @@ class CoefficientMove:
 
 @dataclass(frozen=True, slots=True)
 class ChangeEstimate:
-    """The change date a ``cusum`` check estimated on the latest night."""
+    """The change a ``cusum`` check estimated on the latest night.
+
+    ``change_index`` is the row (0-based among the window's rows used) after which
+    the change most likely happened; ``change_at`` is that row's key (a date-time
+    when the key column is the time column).
+    """
 
     segment: str
     model: str
@@ -256,14 +261,10 @@ def _change_estimates(store: Any, monitor: str, segment: str | None,
     found = []
     for row in cusum[cusum["run_id"] == latest_run].itertuples(index=False):
         detail: Mapping[str, Any] = row.detail if isinstance(row.detail, Mapping) else {}
-        index = detail.get("change_index")
-        change_at = detail.get("change_at")
-        path_at = detail.get("path_at")
-        if change_at is None and index is not None and isinstance(path_at, list) \
-                and 0 <= int(index) < len(path_at):
-            change_at = path_at[int(index)]
-        if change_at is None and index is None:
+        change = detail.get("change")
+        if not isinstance(change, Mapping) or change.get("row") is None:
             continue
+        index, change_at = change.get("row"), change.get("key")
         found.append(ChangeEstimate(
             segment=row.segment, model=row.model,
             change_at=str(change_at) if change_at is not None else None,

@@ -4,23 +4,27 @@ The nightly run stores each check's supporting data in the check row's
 ``detail``.  The report draws the keys below when they are present and says
 plainly which are missing; it never recomputes them.
 
-================================  =============================================================
-check row (``check_name``)        ``detail`` keys read
-================================  =============================================================
-any check (first one found)       ``sample``: ``{"at": [...], "key": [...], "fitted": [...],
-                                  "residual": [...]}`` (the bounded residual sample of the
-                                  window, in time order)
-any drift check (first found)     ``forecast_errors``: ``{"at": [...], "key": [...],
-                                  "error": [...]}`` (the frozen baseline model's errors on the
-                                  fresh rows)
-``psi``                           ``bins``: ``{"edges": [...], "baseline_share": [...],
-                                  "fresh_share": [...]}``
-``cooks_distance``                ``top_rows``: ``[{"key": ..., "cooks_distance": ...}, ...]``
-                                  and ``cutoffs``: ``{label: value}``
-``cusum``                         ``path`` (scaled running sum), ``path_at`` (instants, optional),
-                                  ``bound`` (±, constant) or ``lower``/``upper`` (arrays),
-                                  ``change_index`` / ``change_at`` (the estimated change)
-================================  =============================================================
+``cusum``
+    ``change``: the change-point estimate of ``monitor.stats.changepoint``
+    (``row``, ``key``, ``path_rows``, ``path_values`` = the thinned running sum
+    ``S_k`` of the residuals, ``path_keys``); ``critical_values["5%"]``;
+    ``largest_at_row``.  The check's statistic is ``max|S_k| / √(n·σ̂²)``; when
+    the thinned path holds the row of that maximum, the path is drawn on the
+    statistic's scale (``S_k`` divided by ``|S_max| / statistic``, which undoes
+    the stored division) against ``±critical_values["5%"]``; otherwise it is drawn
+    in the response's units without bounds.
+``psi``
+    ``edges`` (interior edges of the baseline's residual bins),
+    ``baseline_shares``, ``fresh_shares``.
+``cooks_distance``
+    ``top_rows``: ``[{"key", "cooks_distance", ...}]``; ``cut_offs``: the
+    ``cooks_*`` entries are drawn.
+any check (first found)
+    ``sample``: ``{"at": [...], "key": [...], "fitted": [...], "residual": [...]}``,
+    a bounded sample of the window's rows in time order, and
+    ``forecast_errors``: ``{"at": [...], "error": [...]}`` (the frozen baseline
+    model's errors on fresh rows).  The nightly run does not store these yet;
+    the report says so until it does.
 """
 
 from __future__ import annotations
@@ -36,10 +40,18 @@ from ._views import plain_value
 
 __all__ = ["CusumTrace", "NightEvidence", "night_evidence"]
 
+_CUT_OFF_LABELS = {"cooks_4_over_n": "4/n", "cooks_f_median": "F median", "cooks_1": "1"}
+
 
 @dataclass(frozen=True, slots=True)
 class CusumTrace:
-    """The running-sum path a ``cusum`` check stored, with its bounds and change estimate."""
+    """The running-sum path a ``cusum`` check stored, with its bounds and change estimate.
+
+    ``change_index`` is the position in ``path`` nearest to the estimated change row
+    (``change_row``, 0-based among the window's rows); ``change_at`` is the change's
+    key as an ISO instant when the key is a date-time.  ``scaled`` says whether the
+    path is on the statistic's scale (then ``bound`` is the 5 % critical value).
+    """
 
     path: tuple[float, ...]
     at: tuple[str, ...] | None
@@ -51,6 +63,9 @@ class CusumTrace:
     statistic: float | None
     p_value: float | None
     verdict: str
+    scaled: bool
+    change_row: int | None
+    change_key: str | None
 
 
 @dataclass(frozen=True, slots=True)
@@ -93,24 +108,45 @@ def _sample(detail: Mapping[str, Any], name: str, values: str) -> Mapping[str, A
     return None
 
 
+def _instants(values: Sequence[Any]) -> tuple[str, ...] | None:
+    """The values as ISO instants when every one parses as a date-time, else None."""
+    try:
+        return tuple(dt.datetime.fromisoformat(str(v)).isoformat() for v in values)
+    except ValueError:
+        return None
+
+
 def _cusum(row: Any) -> CusumTrace | None:
     detail = row.detail if isinstance(row.detail, Mapping) else {}
-    path = detail.get("path")
-    if not _sequence(path) or not path:
+    change = detail.get("change")
+    if not isinstance(change, Mapping):
         return None
-    at = detail.get("path_at")
-    lower, upper = detail.get("lower"), detail.get("upper")
-    index = detail.get("change_index")
-    return CusumTrace(
-        path=tuple(float("nan") if v is None else float(v) for v in path),
-        at=tuple(str(v) for v in at) if _sequence(at) and len(at) == len(path) else None,
-        bound=float(detail["bound"]) if detail.get("bound") is not None else None,
-        lower=tuple(float(v) for v in lower) if _sequence(lower) else None,
-        upper=tuple(float(v) for v in upper) if _sequence(upper) else None,
-        change_index=int(index) if index is not None else None,
-        change_at=str(detail["change_at"]) if detail.get("change_at") else None,
-        statistic=plain_value(row.statistic), p_value=plain_value(row.p_value),
-        verdict=str(row.verdict))
+    rows, values = change.get("path_rows"), change.get("path_values")
+    if not _sequence(rows) or not _sequence(values) or not values or len(rows) != len(values):
+        return None
+    path = [float("nan") if v is None else float(v) for v in values]
+    statistic = plain_value(row.statistic)
+    critical = detail.get("critical_values", {}).get("5%") \
+        if isinstance(detail.get("critical_values"), Mapping) else None
+    largest = detail.get("largest_at_row")
+    bound = None
+    if statistic and largest in rows and path[rows.index(largest)]:
+        scale = abs(path[rows.index(largest)]) / float(statistic)
+        path = [v / scale for v in path]
+        bound = float(critical) if critical is not None else None
+    keys = change.get("path_keys")
+    at = _instants(keys) if _sequence(keys) and len(keys) == len(path) else None
+    change_row = change.get("row")
+    index = None
+    if change_row is not None:
+        index = min(range(len(rows)), key=lambda i: abs(int(rows[i]) - int(change_row)))
+    key = change.get("key")
+    change_at = _instants([key])[0] if key is not None and _instants([key]) else None
+    return CusumTrace(path=tuple(path), at=at, bound=bound, lower=None, upper=None,
+                      change_index=index, change_at=change_at, statistic=statistic,
+                      p_value=plain_value(row.p_value), verdict=str(row.verdict),
+                      scaled=bound is not None, change_row=None if change_row is None
+                      else int(change_row), change_key=None if key is None else str(key))
 
 
 def night_evidence(checks: pd.DataFrame, *, model: str, segment: str) -> NightEvidence | None:
@@ -131,19 +167,19 @@ def night_evidence(checks: pd.DataFrame, *, model: str, segment: str) -> NightEv
         sample = sample or _sample(detail, "sample", "residual")
         forecast = forecast or _sample(detail, "forecast_errors", "error")
         if row.check_name == "psi":
-            found = detail.get("bins")
-            if isinstance(found, Mapping) and all(_sequence(found.get(k)) for k in
-                                                  ("edges", "baseline_share", "fresh_share")):
-                bins = {k: [float(v) for v in found[k]]
-                        for k in ("edges", "baseline_share", "fresh_share")}
+            names = ("edges", "baseline_shares", "fresh_shares")
+            if all(_sequence(detail.get(k)) for k in names) and detail["baseline_shares"]:
+                bins = {k: [float(v) for v in detail[k]] for k in names}
         elif row.check_name == "cooks_distance":
             found_rows = detail.get("top_rows")
             if _sequence(found_rows):
                 top_rows = tuple(r for r in found_rows if isinstance(r, Mapping)
                                  and r.get("cooks_distance") is not None)
-            found_cutoffs = detail.get("cutoffs")
+            found_cutoffs = detail.get("cut_offs")
             if isinstance(found_cutoffs, Mapping):
-                cutoffs = {str(k): float(v) for k, v in found_cutoffs.items() if v is not None}
+                cutoffs = {_CUT_OFF_LABELS.get(str(k), str(k)): float(v)
+                           for k, v in found_cutoffs.items()
+                           if str(k).startswith("cooks_") and v is not None}
         elif row.check_name == "cusum":
             cusum = _cusum(row)
     first = latest.iloc[0]

@@ -91,6 +91,6 @@ def view_figure(store: Any, monitor: str, view: str, *, metric: str, criterion: 
         trace = evidence.cusum
         return _plots.cusum_figure(trace.path, at=trace.at, bound=trace.bound, lower=trace.lower,
                                    upper=trace.upper, change_index=trace.change_index,
-                                   change_at=trace.change_at,
+                                   change_at=trace.change_at, scaled=trace.scaled,
                                    subtitle=f"Running sum of the errors of {name}")
     return None

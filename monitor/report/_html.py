@@ -639,11 +639,13 @@ def _evidence_figures(page: _Page, evidence: NightEvidence, slug: str) -> list[s
             f"fig-cusum-{slug}",
             _plots.cusum_figure(trace.path, at=trace.at, bound=trace.bound, lower=trace.lower,
                                 upper=trace.upper, change_index=trace.change_index,
-                                change_at=trace.change_at,
+                                change_at=trace.change_at, scaled=trace.scaled,
                                 subtitle=f"Running sum of the errors of {model}"),
             f"Cumulative sum of {model}'s errors in time order (cusum check: "
             f"{trace.verdict}, p {_p(trace.p_value)}). The vertical line is the estimated "
-            "change date, when one was estimated."))
+            "change (change-point estimate of the nightly run)."
+            + ("" if trace.scaled else " Bounds are not drawn: the stored path does not hold "
+               "the row of the largest sum, so its scale cannot be recovered.")))
     if evidence.sample is not None:
         sample = evidence.sample
         forecast = evidence.forecast_errors
@@ -663,8 +665,8 @@ def _evidence_figures(page: _Page, evidence: NightEvidence, slug: str) -> list[s
         bins = evidence.bins
         parts.append(page.figure(
             f"fig-bins-{slug}",
-            _plots.error_bins_figure(bins["edges"], bins["baseline_share"],
-                                     bins["fresh_share"]),
+            _plots.error_bins_figure(bins["edges"], bins["baseline_shares"],
+                                     bins["fresh_shares"]),
             "Share of errors in each of the baseline's residual bins: the baseline against the "
             "latest night (psi check)."))
     if evidence.top_rows:

@@ -278,14 +278,17 @@ def coefficient_paths_figure(paths: pd.DataFrame, *, model: str,
 def cusum_figure(path: Sequence[float], *, at: Sequence[Any] | None = None,
                  bound: float | None = None, lower: Sequence[float] | None = None,
                  upper: Sequence[float] | None = None, change_index: int | None = None,
-                 change_at: Any = None, subtitle: str | None = None) -> Figure:
+                 change_at: Any = None, scaled: bool = True,
+                 subtitle: str | None = None) -> Figure:
     """The cumulative sum of one night's errors in time order, against its bounds.
 
     ``path`` is the scaled cumulative sum as the check stored it; ``at`` the
     instants of its points (positions 1..n when absent).  Bounds are either a
     constant ``bound`` (drawn at ±bound) or arrays ``lower``/``upper``.  The
     estimated change (``change_at``, else point ``change_index``) is a vertical
-    line (``gid="change"``).  Gids: ``cusum-path``, ``bound-upper``, ``bound-lower``.
+    line (``gid="change"``).  ``scaled=False`` labels the axis in the response's
+    units (a path that could not be put on the statistic's scale).  Gids:
+    ``cusum-path``, ``bound-upper``, ``bound-lower``.
     """
     figure, (ax,) = _figure(3.4)
     values = np.asarray(path, dtype=float)
@@ -315,7 +318,8 @@ def cusum_figure(path: Sequence[float], *, at: Sequence[Any] | None = None,
         _date_axis(ax)
     else:
         ax.set_xlabel("row in time order", fontsize=9, color=INK)
-    ax.set_ylabel("scaled running sum", fontsize=9, color=INK)
+    ax.set_ylabel("running sum / √(n·σ̂²)" if scaled else "running sum (response units)",
+                  fontsize=9, color=INK)
     ax.legend(loc="upper left", frameon=False, fontsize=8)
     _heading(figure, subtitle or "Running sum of the errors against its bounds",
              "Errors of a stable model wander around zero; a path that drifts through a bound "
@@ -371,7 +375,9 @@ def error_bins_figure(edges: Sequence[float], baseline_share: Sequence[float],
                       fresh_share: Sequence[float], *, title: str | None = None) -> Figure:
     """Share of errors per bin of the baseline's residuals: baseline against tonight.
 
-    One row per bin (labelled by its edges), a hollow point for the baseline's
+    ``edges`` are the bins' interior edges (one fewer than the bins; the first and
+    last bins are open-ended) or all edges (one more than the bins).  One row per
+    bin (labelled by its edges), a hollow point for the baseline's
     share (``gid="baseline-share"``) and a filled point for tonight's
     (``gid="fresh-share"``), joined by a bar (``gid="bin-shift"``) whose length is
     the change.
@@ -387,11 +393,18 @@ def error_bins_figure(edges: Sequence[float], baseline_share: Sequence[float],
             color=INK, gid="baseline-share", label="baseline")
     ax.plot(fresh, rows, linestyle="none", marker="o", markersize=6, color=ALERT,
             gid="fresh-share", label="tonight")
+    if len(bounds) == len(base) - 1:  # interior edges: open-ended first and last bins
+        bounds = np.concatenate([[-np.inf], bounds, [np.inf]])
     labels = []
     for index in range(len(base)):
-        low = bounds[index] if index < len(bounds) else np.nan
-        high = bounds[index + 1] if index + 1 < len(bounds) else np.nan
-        labels.append(f"{low:.3g} to {high:.3g}")
+        if len(bounds) != len(base) + 1:
+            labels.append(f"bin {index + 1}")
+        elif np.isneginf(bounds[index]):
+            labels.append(f"below {bounds[index + 1]:.3g}")
+        elif np.isposinf(bounds[index + 1]):
+            labels.append(f"{bounds[index]:.3g} and above")
+        else:
+            labels.append(f"{bounds[index]:.3g} to {bounds[index + 1]:.3g}")
     ax.set_yticks(rows, labels)
     ax.invert_yaxis()
     ax.grid(axis="x", color="#e4e7eb", linewidth=0.8)
