@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
+import json
 from pathlib import Path
 from typing import Any
 
@@ -139,15 +140,9 @@ def _cell(value: Any) -> Any:
         return moment.strftime("%Y-%m-%d") if moment.time() == dt.time(0) else \
             moment.strftime("%Y-%m-%d %H:%M")
     if isinstance(value, (dict, list)):
-        import json
-
         text = json.dumps(value, ensure_ascii=False, default=str)
         return text if len(text) <= 60 else text[:59] + "…"
-    if value is None:
-        return "—"
-    if isinstance(value, str):
-        return value
-    return value
+    return "—" if value is None else value
 
 
 def _numeric(view: Any, index: int) -> bool:
