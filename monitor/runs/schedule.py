@@ -217,9 +217,19 @@ def next_slot(schedule: ScheduleSpec | MonitorSpec, after: dt.datetime) -> dt.da
 def previous_slot(schedule: ScheduleSpec | MonitorSpec, at: dt.datetime, *,
                   within: dt.timedelta = dt.timedelta(days=400)) -> dt.datetime | None:
     """The last slot at or before ``at`` (looking back at most ``within``)."""
+    spec = _schedule_of(schedule)
     moment = _aware(at, "at")
-    slots = slots_between(schedule, moment - within, moment + _TINY)
-    return slots[-1] if slots else None
+    cron = _parse_cron(spec.cron)
+    zone = ZoneInfo(spec.timezone)
+    # walk back day by day (a gap slot can land on the next local day: start one day late)
+    day = moment.astimezone(zone).date() + dt.timedelta(days=1)
+    for _ in range(within.days + 3):
+        earlier = [slot for slot in _day_slots(cron, zone, day) if slot <= moment]
+        if earlier:
+            found = earlier[-1]
+            return found if moment - found <= within else None
+        day -= dt.timedelta(days=1)
+    return None
 
 
 @dataclass(frozen=True, slots=True)
