@@ -65,6 +65,9 @@ class AlertPolicy:
         Target in-control ARL (nights) of all sequential charts of one model
         together.  Default 800: about one false sequential alarm per two years,
         leaving room for the fixed-window checks within one alert per year.
+    rows_per_night
+        Typical number of new rows a night.  The charts advance once per row,
+        so their ARL in rows is ``nights_between_false_alarms × rows_per_night``.
     chart_shares
         Share of the false-alarm budget per chart family: level, scale, serial,
         coefficient pulls (split among them), candidate gains (split among
@@ -113,6 +116,7 @@ class AlertPolicy:
     """
 
     nights_between_false_alarms: float = 800.0
+    rows_per_night: float = 1.0
     chart_shares: tuple[tuple[str, float], ...] = (
         ("level", 0.15), ("scale", 0.3), ("serial", 0.3), ("pull", 0.1), ("gain", 0.15))
     level_shift: float = 1.0
@@ -187,7 +191,7 @@ def chart_settings(policy: AlertPolicy, watched: Sequence[str],
 
     def make(family: str, allowance: float, law: str, two_sided: bool) -> CusumSettings:
         share = shares[family] / total_share / members[family]
-        target = policy.nights_between_false_alarms / share
+        target = policy.nights_between_false_alarms * policy.rows_per_night / share
         h = _threshold(round(target, 6), allowance, law, two_sided)
         return CusumSettings(allowance, h, two_sided, 0, ceiling)
 
