@@ -28,6 +28,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from storage.history import (
+    BaselineRow,
+    CheckRow,
     CoefficientRow,
     ComparisonRow,
     HistoryStore,
@@ -153,20 +155,37 @@ def run_monitor(
             step("evaluate")
             segments = _segments(scan, monitor)
             rows: dict[str, list[Any]] = {"metrics": [], "coefficients": [], "comparisons": [],
-                                          "verdicts": []}
+                                          "verdicts": [], "checks": [], "baselines": []}
             verdicts: dict[str, Mapping[str, Any]] = {}
             rows_read = rows_dropped = 0
             for segment in segments:
                 chunks = _chunk_source(scan, monitor, segment)
                 chosen = history.chosen_model(monitor.name, segment) or \
                     history.chosen_model(monitor.name) or monitor.family.chosen
-                report = _evaluate(monitor, chosen, chunks)
+                family = _family_spec(monitor, chosen)
+                step(f"baseline{_label(segment)}")
+                baseline, new_baseline = _baseline_for(history, monitor, family, chosen,
+                                                       segment, source, columns)
+                step(f"evaluate{_label(segment)}")
+                night = _evaluate(monitor, family, chunks, scan, baseline)
+                report = night.report
                 data = report.to_dict()
                 verdicts[segment] = data["verdict"]
                 counts = data.get("rows") or {}
                 rows_read += int(counts.get("rows_read", 0))
                 rows_dropped += int(counts.get("dropped_rows", 0))
                 _collect_rows(rows, report, data, monitor, segment)
+                if new_baseline is None and baseline is None:
+                    # no baseline yet: tonight's window becomes it (drift is judged from the
+                    # next night on)
+                    new_baseline = (night.snapshot(window_start=window_start.isoformat(),
+                                                   window_end=window_end.isoformat()),
+                                    window_start, window_end)
+                if new_baseline is not None:
+                    snapshot, start, end = new_baseline
+                    rows["baselines"].append(BaselineRow(
+                        model=chosen, payload=snapshot.to_dict(), format_version=snapshot.version,
+                        window_start=start, window_end=end, segment=segment))
             step("history")
             record.update(rows_read=scan.rows or rows_read, rows_dropped=rows_dropped,
                           watermark_at=scan.max_time, finished_at=dt.datetime.now(dt.UTC),
@@ -242,15 +261,58 @@ def _chunk_source(scan: Any, monitor: MonitorSpec, segment: str
     return chunks
 
 
-def _evaluate(monitor: MonitorSpec, chosen: str,
-              chunks: Callable[[], Iterator[Mapping[str, np.ndarray]]]) -> Any:
-    from ..stats.family import evaluate_family, make_family_spec
+def _label(segment: str) -> str:
+    return f" of segment {segment!r}" if segment else ""
+
+
+def _family_spec(monitor: MonitorSpec, chosen: str) -> Any:
+    from ..stats.family import make_family_spec
 
     family = monitor.family
-    spec = make_family_spec(response=family.response, candidates=dict(family.candidates),
+    return make_family_spec(response=family.response, candidates=dict(family.candidates),
                             chosen=chosen, criterion=family.criterion, alpha=family.alpha,
                             margin=family.margin, where=f"monitors.{monitor.name}.family")
-    return evaluate_family(spec, chunks, refinement_passes=1)
+
+
+def _evaluate(monitor: MonitorSpec, family: Any,
+              chunks: Callable[[], Iterator[Mapping[str, np.ndarray]]], scan: Any,
+              baseline: Any) -> Any:
+    from ..stats.nightly import evaluate_night
+
+    return evaluate_night(family, chunks, baseline=baseline,
+                          time_column=monitor.source.time_column,
+                          key_column=monitor.source.key_column or monitor.source.time_column,
+                          in_time_order=lambda: bool(scan.in_time_order))
+
+
+def _baseline_for(history: HistoryStore, monitor: MonitorSpec, family: Any, chosen: str,
+                  segment: str, source: Any, columns: list[str]) -> tuple[Any, Any]:
+    """(baseline to compare with tonight, new baseline row to store or None).
+
+    The newest stored baseline of the chosen model is used unless a promotion came
+    after it or the candidates changed.  Without one: a fixed baseline window in
+    the spec is summarised now (two reads of that window); otherwise the caller
+    turns tonight's window into the baseline.
+    """
+    from ..stats.drift import BaselineSnapshot
+    from ..stats.nightly import baseline_fits_family
+
+    stored = history.latest_baseline(monitor.name, chosen, segment)
+    if stored is not None:
+        promotions = history.promotions(monitor.name)
+        promoted_after = (not promotions.empty and
+                          bool((promotions["promoted_at"] > stored.created_at).any()))
+        snapshot = BaselineSnapshot.from_dict(stored.payload)
+        if not promoted_after and baseline_fits_family(snapshot, family):
+            return snapshot, None
+    windows = monitor.windows
+    if windows.baseline_start is None or windows.baseline_end is None:
+        return None, None
+    scan = source.scan(columns, windows.baseline_start, windows.baseline_end)
+    night = _evaluate(monitor, family, _chunk_source(scan, monitor, segment), scan, None)
+    snapshot = night.snapshot(window_start=windows.baseline_start.isoformat(),
+                              window_end=windows.baseline_end.isoformat())
+    return snapshot, (snapshot, windows.baseline_start, windows.baseline_end)
 
 
 def _number(value: Any) -> float | None:
@@ -285,11 +347,31 @@ def _collect_rows(rows: dict[str, list[Any]], report: Any, data: Mapping[str, An
                 model=test["smaller"], other_model=test["larger"], test=kind,
                 statistic=_number(test.get(statistic)), p_value=_number(test.get(p_value)),
                 df=_number(test.get("df")), segment=segment))
+    for name, results in getattr(report, "checks", {}).items():
+        for result in results:
+            df, df2 = _degrees(result.df)
+            detail = dict(result.detail)
+            detail.update(reference=result.reference, thresholds=dict(result.thresholds))
+            if not result.applicable:
+                detail["reason"] = result.reason
+            rows["checks"].append(CheckRow(
+                model=name, check=result.check, verdict=result.verdict,
+                statistic=_number(result.statistic), p_value=_number(result.p_value),
+                df=df, df2=df2, is_exact=result.exact, sample_size=result.sample_size,
+                rows=result.rows, detail=detail, segment=segment))
     verdict = data["verdict"]
     rows["verdicts"].append(VerdictRow(
         criterion=monitor.family.criterion, best_model=verdict.get("best"),
         chosen_model=verdict.get("chosen"), is_chosen_best=verdict.get("chosen_is_best"),
         margin=monitor.family.margin, detail=verdict, segment=segment))
+
+
+def _degrees(df: Any) -> tuple[float | None, float | None]:
+    if df is None:
+        return None, None
+    if isinstance(df, (tuple, list)):
+        return _number(df[0]), _number(df[1]) if len(df) > 1 else None
+    return _number(df), None
 
 
 def run_as_user() -> str:

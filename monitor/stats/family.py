@@ -81,7 +81,8 @@ from typing import Any
 from scipy import stats
 
 from ..errors import ConfigurationError, FormulaError, ModelFitError
-from .fitting import ChunkSource, derive_factor, pass_one, refine_factors, result_of
+from .engine import SubsetFactor
+from .fitting import ChunkSource, PassOne, derive_factor, pass_one, refine_factors, result_of
 from .formula import CategoricalSpec, Design, ParsedFormula, parse_formula
 from .results import FitResult, to_jsonable
 
@@ -750,6 +751,65 @@ def _verdict(spec: FamilySpec, fits: Mapping[str, FitResult], best: str,
 # One scan for the whole family
 
 
+def prepare_candidates(
+    spec: FamilySpec,
+    chunks: Iterable[Mapping[str, Any]],
+    *,
+    design: Design | None = None,
+    strict: bool = False,
+) -> tuple[PassOne, list[SubsetFactor]]:
+    """Pass 1 over the union of the candidates' columns, and every candidate's factor.
+
+    Refuses candidates that are the same model after encoding; too few rows for a
+    candidate names it.
+    """
+    formulas = [parse_formula(text) for text in spec.formulas]
+    if design is not None and tuple(f.text for f in design.formulas) != spec.formulas:
+        raise ConfigurationError("the design given was built for other formulas",
+                                 where="family design",
+                                 hint="rebuild the baseline design from this family's candidates")
+    one = pass_one(chunks, formulas, design=design, categorical=spec.categorical_mapping(),
+                   strict=strict)
+    names = spec.names
+    shapes: dict[tuple[frozenset[int], bool], str] = {}
+    for name, (indices, has_intercept) in zip(names, one.design.models, strict=True):
+        shape = (frozenset(indices), has_intercept)
+        if shape in shapes:
+            raise ConfigurationError(
+                f"candidates {shapes[shape]!r} and {name!r} are the same model after encoding "
+                f"(same design columns and intercept)", where=f"family.candidates.{name}",
+                hint="remove one of them or change its terms")
+        shapes[shape] = name
+    factors = []
+    for m, name in enumerate(names):
+        try:
+            factors.append(derive_factor(one, m))
+        except ModelFitError as error:
+            raise ModelFitError(error.what, where=f"candidate {name!r} ({error.where})",
+                                hint=error.hint) from error
+    return one, factors
+
+
+def family_rows(spec: FamilySpec, one: PassOne, reads: int) -> FamilyRows:
+    """The row counts of one scan under the common-rows policy."""
+    names = spec.names
+    formulas = [parse_formula(text) for text in spec.formulas]
+    totals = one.totals
+    reads_of = {name: set(formula.columns) for name, formula in zip(names, formulas, strict=True)}
+    data_columns = set(one.design.data_columns)
+    left_out = {
+        name: {column: count for column, count in totals.dropped_by_column.items()
+               if column in data_columns and column not in reads_of[name]}
+        for name in names}
+    rows = FamilyRows(rows_read=totals.rows_read, rows_used=totals.rows_used,
+                      dropped_rows=totals.dropped_rows,
+                      dropped_by_column=dict(totals.dropped_by_column),
+                      unseen_levels={k: dict(v) for k, v in totals.unseen_levels.items()},
+                      left_out_by_other_columns=left_out,
+                      chunks_absorbed=one.state.chunks_absorbed, data_reads=reads)
+    return rows
+
+
 def evaluate_family(
     spec: FamilySpec,
     chunks: ChunkSource,
@@ -795,30 +855,7 @@ def evaluate_family(
         reads += 1
         return chunks()
 
-    formulas = [parse_formula(text) for text in spec.formulas]
-    if design is not None and tuple(f.text for f in design.formulas) != spec.formulas:
-        raise ConfigurationError("the design given was built for other formulas",
-                                 where="family design",
-                                 hint="rebuild the baseline design from this family's candidates")
-    one = pass_one(counted(), formulas, design=design, categorical=spec.categorical_mapping(),
-                   strict=strict)
-    names = spec.names
-    shapes: dict[tuple[frozenset[int], bool], str] = {}
-    for name, (indices, has_intercept) in zip(names, one.design.models, strict=True):
-        shape = (frozenset(indices), has_intercept)
-        if shape in shapes:
-            raise ConfigurationError(
-                f"candidates {shapes[shape]!r} and {name!r} are the same model after encoding "
-                f"(same design columns and intercept)", where=f"family.candidates.{name}",
-                hint="remove one of them or change its terms")
-        shapes[shape] = name
-    factors = []
-    for m, name in enumerate(names):
-        try:
-            factors.append(derive_factor(one, m))
-        except ModelFitError as error:
-            raise ModelFitError(error.what, where=f"candidate {name!r} ({error.where})",
-                                hint=error.hint) from error
+    one, factors = prepare_candidates(spec, counted(), design=design, strict=strict)
     if refinement_passes > 0:
         coefficients, ssr, steps = refine_factors(counted, one.design, factors,
                                                   max_passes=refinement_passes)
@@ -827,19 +864,7 @@ def evaluate_family(
         ssr = [f.ssr for f in factors]
         steps = [0] * len(factors)
     fits = [result_of(one, m, factors[m], coefficients=coefficients[m], ssr=ssr[m],
-                      refinement_steps=steps[m]) for m in range(len(names))]
-    totals = one.totals
-    reads_of = {name: set(formula.columns) for name, formula in zip(names, formulas, strict=True)}
-    data_columns = set(one.design.data_columns)
-    left_out = {
-        name: {column: count for column, count in totals.dropped_by_column.items()
-               if column in data_columns and column not in reads_of[name]}
-        for name in names}
-    rows = FamilyRows(rows_read=totals.rows_read, rows_used=totals.rows_used,
-                      dropped_rows=totals.dropped_rows,
-                      dropped_by_column=dict(totals.dropped_by_column),
-                      unseen_levels={k: dict(v) for k, v in totals.unseen_levels.items()},
-                      left_out_by_other_columns=left_out,
-                      chunks_absorbed=one.state.chunks_absorbed, data_reads=reads)
+                      refinement_steps=steps[m]) for m in range(len(factors))]
+    rows = family_rows(spec, one, reads)
     return compare_fits(spec, fits, one.design.models, rows=rows)
 

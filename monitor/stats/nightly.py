@@ -1,0 +1,106 @@
+"""A night's evaluation of a family: exactly two reads of the window.
+
+Read 1 (:func:`monitor.stats.family.prepare_candidates`) builds the one
+least-squares state and every candidate's factor; read 2
+(:func:`monitor.stats.residual_pass.residual_pass`) computes every candidate's
+residuals at once, refines their coefficients with accurately computed
+residuals, and accumulates what the assumption checks (and, with a baseline,
+the drift checks) need.  The fits, the ranking, the nested tests, the verdict
+and the checks then come from those two reads.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass, replace
+from typing import Any
+
+from ..errors import ConfigurationError
+from .changepoint import estimate_change
+from .checks import CheckResult, run_checks
+from .drift import BaselineSnapshot, build_snapshot
+from .family import FamilyReport, FamilySpec, compare_fits, family_rows, prepare_candidates
+from .fitting import ChunkSource, result_of
+from .formula import CategoricalSpec
+from .residual_pass import CheckOptions, PassTwoResult, residual_pass
+
+__all__ = ["NightlyEvaluation", "baseline_fits_family", "evaluate_night"]
+
+
+@dataclass(frozen=True, slots=True)
+class NightlyEvaluation:
+    """The family report (with every candidate's checks), pass 2, and change estimates."""
+
+    report: FamilyReport
+    pass_two: PassTwoResult
+    changes: Mapping[str, Any]
+
+    def snapshot(self, *, window_start: str | None = None,
+                 window_end: str | None = None) -> BaselineSnapshot:
+        """This window summarised as a baseline for later nights."""
+        return build_snapshot(self.pass_two, window_start=window_start, window_end=window_end)
+
+
+def baseline_fits_family(baseline: BaselineSnapshot, spec: FamilySpec) -> bool:
+    """Whether a stored baseline was made for exactly this family's formulas."""
+    return tuple(baseline.formulas) == tuple(spec.formulas)
+
+
+def evaluate_night(
+    spec: FamilySpec,
+    chunks: ChunkSource,
+    *,
+    baseline: BaselineSnapshot | None = None,
+    time_column: str | None = None,
+    key_column: str | None = None,
+    in_time_order: Callable[[], bool] | bool = True,
+    options: CheckOptions | None = None,
+    strict: bool = False,
+) -> NightlyEvaluation:
+    """Evaluate a family and run every candidate's checks, reading the rows twice.
+
+    Parameters
+    ----------
+    spec
+        The family.
+    chunks
+        A callable returning a fresh iterator of chunks; each chunk carries the
+        family's columns and ``time_column`` / ``key_column``.
+    baseline
+        A stored snapshot of the same family: its categorical levels are reused
+        (so tonight's rows are encoded as the baseline's were) and the drift
+        checks compare tonight with it.
+    in_time_order
+        Whether the rows came in time order; a callable is asked after read 1
+        (a source knows only then).
+    """
+    if baseline is not None and not baseline_fits_family(baseline, spec):
+        raise ConfigurationError(
+            "the stored baseline was made for other candidate formulas",
+            where="baseline", hint="promote a model (or clear the baseline) to start a new one")
+    options = options or CheckOptions()
+    if baseline is not None:
+        declared = dict(spec.categorical_mapping())
+        for column, levels in baseline.levels:
+            declared.setdefault(column, CategoricalSpec(levels=tuple(levels)))
+        spec = replace(spec, categorical=tuple(declared.items()))
+    reads = 0
+
+    def counted() -> Iterable[Mapping[str, Any]]:
+        nonlocal reads
+        reads += 1
+        return chunks()
+
+    one, factors = prepare_candidates(spec, counted(), strict=strict)
+    ordered = in_time_order() if callable(in_time_order) else in_time_order
+    two = residual_pass(counted(), one.design, one.state, factors, time_column=time_column,
+                        key_column=key_column or time_column, in_time_order=ordered,
+                        baseline=baseline, options=options)
+    fits = [result_of(one, m, factors[m], coefficients=two.refined_coefficients[m],
+                      ssr=two.refined_ssr[m], refinement_steps=1)
+            for m in range(len(factors))]
+    report = compare_fits(spec, fits, one.design.models, rows=family_rows(spec, one, reads))
+    checks: dict[str, tuple[CheckResult, ...]] = {
+        name: run_checks(two, m) for m, name in enumerate(spec.names)}
+    changes = {name: estimate_change(two, m) for m, name in enumerate(spec.names)}
+    return NightlyEvaluation(replace(report, checks=checks), two, changes)
