@@ -196,8 +196,10 @@ class PassTwoResult:
     white_columns: tuple[int, ...] = ()
     white_pairs: tuple[tuple[int, int], ...] = ()
     white_skip: str | None = None
-    white_factor: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))  # TSQR of [W2 | u]
+    white_zz: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))    # W'W
+    white_zu: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))    # W'u
     white_centre: FloatArray = field(default_factory=lambda: np.zeros(0))
+    white_product_centre: FloatArray = field(default_factory=lambda: np.zeros(0))
     white_spread: FloatArray = field(default_factory=lambda: np.zeros(0))
     # RESET: f = (ŷ − reset_shift)/reset_scale; sums with f², f³
     reset_shift: FloatArray = field(default_factory=lambda: np.zeros(0))
@@ -465,14 +467,23 @@ def residual_pass(
         result.white_columns = white_columns
         result.white_pairs = tuple((a, b) for i, a in enumerate(white_columns)
                                    for b in white_columns[i:])
-        result.white_factor = np.zeros((0, width + M))
-        # standardise the first-order columns with their exact means and SDs (from pass 1),
-        # so squares and cross-products are not dominated by offsets
+        result.white_zz = np.zeros((width, width))
+        result.white_zu = np.zeros((width, M))
+        # Centre and scale every auxiliary column with its exact mean and SD from the pass-1
+        # factor (R'R = Z'Z; its rows below the first hold the centred cross-products), and
+        # centre each product by its exact mean (a correlation), so the accumulated
+        # cross-products are covariances: no cancellation, whatever the chunking.
         R_state = state.square_factor()
-        centred_ss = np.sum(R_state[1:, 1:-1] ** 2, axis=0)
-        spread = np.sqrt(centred_ss / n_total)
-        result.white_centre = means[1:-1][list(white_columns)]
-        result.white_spread = np.where(spread > 0, spread, 1.0)[list(white_columns)]
+        chosen = [1 + c for c in white_columns]
+        centred = R_state[1:, chosen].T @ R_state[1:, chosen] / n_total
+        spread = np.sqrt(np.clip(np.diag(centred), 0.0, None))
+        spread = np.where(spread > 0, spread, 1.0)
+        correlation = centred / np.outer(spread, spread)
+        where = {c: i for i, c in enumerate(white_columns)}
+        result.white_centre = means[chosen]
+        result.white_spread = spread
+        result.white_product_centre = np.array(
+            [correlation[where[a], where[b]] for a, b in result.white_pairs])
     elif white_columns:
         result.white_skip = (f"the family's second-order design would have {width} columns "
                              f"(limit {options.white_max_columns})")
@@ -623,13 +634,15 @@ def residual_pass(
             where = {c: i for i, c in enumerate(result.white_columns)}
             a_idx = [1 + where[a] for a, _ in result.white_pairs]
             b_idx = [1 + where[b] for _, b in result.white_pairs]
-            W2 = np.empty((m, 1 + k + len(a_idx) + M))
+            W2 = np.empty((m, 1 + k + len(a_idx)))
             W2[:, 0] = 1.0
             np.subtract(Z[:, cols], result.white_centre, out=W2[:, 1:1 + k])
             W2[:, 1:1 + k] /= result.white_spread
-            np.multiply(W2[:, a_idx], W2[:, b_idx], out=W2[:, 1 + k:1 + k + len(a_idx)])
-            W2[:, 1 + k + len(a_idx):] = U
-            result.white_factor = np.linalg.qr(np.vstack([result.white_factor, W2]), mode="r")
+            products = W2[:, 1 + k:]
+            np.multiply(W2[:, a_idx], W2[:, b_idx], out=products)
+            products -= result.white_product_centre
+            result.white_zz += W2.T @ W2
+            result.white_zu += W2.T @ U
         # ---- RESET
         fitted = (y_centred + state.shift[-1])[:, None] - E
         F = (fitted - result.reset_shift) / np.where(result.reset_scale > 0, result.reset_scale, 1)
