@@ -13,8 +13,8 @@ from typing import Any
 
 import numpy as np
 
-from ._frames import DEFAULT_CHUNK_ROWS, TableInput, chunk_source
 from ._api import require_columns
+from ._frames import DEFAULT_CHUNK_ROWS, TableInput, chunk_source
 from .errors import DataValidationError
 from .stats.changepoint import ChangeEstimate, estimate_change
 from .stats.checks import CheckResult, run_checks

@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
-
 from checks_support import checks_by_id, relative, run_family
+
 from monitor.stats.formula import CategoricalSpec
 from monitor.stats.residual_pass import CheckOptions
 

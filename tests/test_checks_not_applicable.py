@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-
 from checks_support import checks_by_id, run_family
+
 from monitor.stats.checks import CHECKS, CheckResult
 from monitor.stats.residual_pass import CheckOptions
 

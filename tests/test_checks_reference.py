@@ -12,11 +12,11 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from checks_support import checks_by_id, relative, run_family
 from scipy import integrate, stats
 from statsmodels.stats import diagnostic, stattools
 from statsmodels.stats.outliers_influence import OLSInfluence, variance_inflation_factor
 
-from checks_support import checks_by_id, relative, run_family
 from monitor.stats.residual_pass import CheckOptions
 
 TIGHT = 1e-8

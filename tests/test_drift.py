@@ -8,9 +8,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from checks_support import relative
 from scipy import stats
 
-from checks_support import relative
 from monitor import BaselineSnapshot, build_baseline, check_data
 from monitor.errors import ConfigurationError
 from monitor.stats.drift import population_stability_index
