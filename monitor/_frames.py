@@ -140,7 +140,9 @@ def _parquet_chunk_source(path: Path, columns: Sequence[str] | None, chunk_rows:
 
     def parquet_chunks() -> Iterator[Mapping[str, np.ndarray]]:
         try:
-            for batch in dataset.to_batches(columns=names, batch_size=chunk_rows):
+            # little read-ahead: memory holds about one chunk, not the file
+            for batch in dataset.to_batches(columns=names, batch_size=chunk_rows,
+                                            batch_readahead=1, fragment_readahead=1):
                 if batch.num_rows:
                     yield arrow_to_columns(batch, names)
         except (pa.ArrowInvalid, OSError) as error:
