@@ -1,8 +1,10 @@
 """Run a Python script in its own process; measure its wall time and its own peak memory.
 
-The peak resident set size comes from ``os.wait4``, which returns the resource
-usage of exactly that child (``ru_maxrss``, kilobytes on Linux), so each side of
-a benchmark is measured alone, whatever else the parent ran before.
+Peak memory is the child's own high-water resident set, ``VmHWM`` from
+``/proc/self/status``, which the child reports as it ends (:func:`own_peak_mb`).
+It belongs to the child's address space after ``exec``.  ``ru_maxrss`` from
+``wait4`` is kept for reference only: on Linux it also carries the parent's
+resident set at the moment of the fork, so it is useless when the parent is big.
 """
 
 from __future__ import annotations
@@ -13,6 +15,7 @@ import sys
 import tempfile
 import time
 from dataclasses import dataclass
+from pathlib import Path
 
 
 @dataclass(frozen=True, slots=True)
@@ -22,6 +25,19 @@ class Measured:
     stderr: str
     wall_seconds: float
     peak_rss_mb: float
+
+
+def own_peak_mb() -> float:
+    """This process's peak resident set (MB): VmHWM, else ru_maxrss where /proc is absent."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
+    import resource
+
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 def run_python(script: str, *arguments: str) -> Measured:

@@ -5,8 +5,8 @@ Run on demand (not collected by pytest)::
     python tests/benchmarks/bench_fit.py                       # 5M rows, then 1M rows
     python tests/benchmarks/bench_fit.py --rows 1000000 --repeats 1
 
-Three sides, each in its own process (so each peak RSS is its own, measured with
-``os.wait4``):
+The sides, each in its own process (so each peak RSS is its own: the child's
+``VmHWM``, see ``_peak.py``):
 
 * **regwarden**: ``fit_formulas`` over ``chunk_source(path)``: the union state in
   one read, the six subset fits derived from it, the refinement reads included;
@@ -163,7 +163,7 @@ def measure(side: str, path: Path, repeats: int) -> dict[str, float]:
         if done.returncode != 0:
             raise SystemExit(f"{side} failed ({done.returncode}):\n{done.stderr}")
         report = json.loads(done.stdout.strip().splitlines()[-1])
-        report["peak_rss_mb"] = done.peak_rss_mb
+        report["peak_rss_mb"] = report.pop("own_peak_mb")  # VmHWM of the child itself
         report["wall_seconds"] = done.wall_seconds
         runs.append(report)
     summary = {key: statistics.median(r[key] for r in runs) for key in runs[0]}
@@ -208,7 +208,11 @@ def main() -> None:
     parser.add_argument("--path", help=argparse.SUPPRESS)
     options = parser.parse_args()
     if options.side:  # inside a measured child process
-        print(json.dumps(SIDES[options.side](options.path)))
+        from _peak import own_peak_mb
+
+        result = SIDES[options.side](options.path)
+        result["own_peak_mb"] = own_peak_mb()
+        print(json.dumps(result))
         return
     for rows in options.rows:
         path = make_file(rows, options.directory)
