@@ -15,6 +15,8 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
+from threadpoolctl import threadpool_limits
+
 from ..errors import ConfigurationError
 from .changepoint import estimate_change
 from .checks import CheckResult, run_checks
@@ -91,11 +93,20 @@ def evaluate_night(
         reads += 1
         return chunks()
 
-    one, factors = prepare_candidates(spec, counted(), strict=strict)
-    ordered = in_time_order() if callable(in_time_order) else in_time_order
-    two = residual_pass(counted(), one.design, one.state, factors, time_column=time_column,
-                        key_column=key_column or time_column, in_time_order=ordered,
-                        baseline=baseline, options=options)
+    # A night works on matrices of a few columns (the chunk QRs are tall but narrow):
+    # with BLAS threads, every small solve paid the threads' start-up, ~100x its cost on a
+    # loaded two-core machine.
+    with threadpool_limits(limits=1, user_api="blas"):
+        one, factors = prepare_candidates(spec, counted(), strict=strict)
+        ordered = in_time_order() if callable(in_time_order) else in_time_order
+        two = residual_pass(counted(), one.design, one.state, factors, time_column=time_column,
+                            key_column=key_column or time_column, in_time_order=ordered,
+                            baseline=baseline, options=options)
+        return _assemble(spec, one, factors, two, reads)
+
+
+def _assemble(spec: FamilySpec, one: Any, factors: Any, two: PassTwoResult,
+              reads: int) -> NightlyEvaluation:
     fits = [result_of(one, m, factors[m], coefficients=two.refined_coefficients[m],
                       ssr=two.refined_ssr[m], refinement_steps=1)
             for m in range(len(factors))]
