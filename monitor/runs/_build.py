@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from monitor.errors import ConfigurationError, StorageError
 from storage.history import HistoryStore
 from storage.sources import ParquetSource, SqlSource
 
@@ -13,9 +14,19 @@ __all__ = ["open_store", "open_source"]
 
 
 def open_store(spec: Spec) -> HistoryStore:
-    """The spec's history store, created or upgraded to the package's schema version."""
+    """The spec's history store, created or upgraded to the package's schema version.
+
+    A store that cannot be opened is a configuration problem of ``history.store``
+    (:class:`ConfigurationError`, exit code 2): nothing can be recorded.
+    """
     store = HistoryStore(spec.store_url, url_env=spec.store_env, table_prefix=spec.table_prefix)
-    store.upgrade()
+    try:
+        store.upgrade()
+    except StorageError as error:
+        store.close()
+        key = "history.store_env" if spec.store_env else "history.store"
+        raise ConfigurationError(f"{error.what} (store {store.describe()})", where=key,
+                                 hint=error.hint or f"check {key}") from error
     return store
 
 

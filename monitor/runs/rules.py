@@ -122,6 +122,8 @@ ALERT_KINDS: Mapping[str, AlertKind] = {kind.name: kind for kind in (
               "a category column has values the models have never seen"),
     AlertKind("data_schema_changed", "data", "critical", "the source's columns have changed"),
     AlertKind("data_source_unreachable", "data", "critical", "the source could not be read"),
+    AlertKind("run_failed", "data", "critical",
+              "the run failed before it could judge the models"),
     AlertKind("missed_runs", "schedule", "warning", "scheduled runs did not happen"),
 )}
 

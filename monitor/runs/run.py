@@ -1,12 +1,19 @@
-"""One monitoring run: spec → source → family (pass 1, verdict) → history, in one transaction.
+"""One monitoring run: spec → source → family → checks → rules → history (one transaction) → delivery.
 
 ``run_monitor(config, name, as_of=None)`` resolves the fresh window for
 ``as_of`` (half-open ``[as_of − fresh, as_of)``), claims the slot in the run
 ledger (a slot completed before is a no-op), reads the window, evaluates the
-family on it (one scan for every candidate; per segment when the monitor has a
-segment column) and writes every result row together with the run's status in
-ONE transaction.  A failure at any step is recorded as a failed run with its step
-and reason; the slot can be run again.
+family on it (pass 1, fits, verdict, pass 2 with every candidate's checks and
+drift; per segment when the monitor has a segment column), advances the
+sequential watch on the rows that are new since the last run, turns the
+findings into alerts (:mod:`monitor.runs.alerting`, :mod:`monitor.runs.rules`),
+and writes every result row, the alerts and the run's grouped messages together
+with the run's status in ONE transaction.  Then the monitor's undelivered
+messages (tonight's and any left from earlier runs) are sent.
+
+A failure at any step is recorded as a failed run with its step and reason, and
+becomes a data-problem alert (written with the failed run, in its transaction)
+that the next completed run clears; the slot can be run again.
 """
 
 from __future__ import annotations
@@ -28,10 +35,12 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from storage.history import (
+    AlertRow,
     BaselineRow,
     CheckRow,
     CoefficientRow,
     ComparisonRow,
+    DeliveryRow,
     HistoryStore,
     MetricRow,
     RunRecord,
@@ -39,8 +48,10 @@ from storage.history import (
 )
 
 from .._frames import arrow_to_columns
-from ..errors import RegwardenError
+from ..errors import ModelFitError, RegwardenError
+from . import alerting
 from ._build import open_source, open_store
+from .rules import Condition
 from .spec import MonitorSpec, Spec, load_spec
 
 __all__ = ["RunOutcome", "default_owner", "run_monitor", "slot_of"]
@@ -69,6 +80,20 @@ class RunOutcome:
     rows_dropped: int = 0
     verdicts: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
     exit_code: int = 0
+    #: the run's alert events (opened, escalated, reminder, resolved), as plain dicts
+    alert_events: tuple[Mapping[str, Any], ...] = ()
+    #: alerts of the monitor still active (open, acknowledged or snoozed) after the run
+    active_alerts: int = 0
+    #: what the delivery after the run did: delivered / failed message counts and errors
+    delivery: Mapping[str, Any] = field(default_factory=dict)
+
+    @property
+    def alerts_opened(self) -> tuple[str, ...]:
+        return tuple(e["alert"] for e in self.alert_events if e["event"] == "opened")
+
+    @property
+    def alerts_resolved(self) -> tuple[str, ...]:
+        return tuple(e["alert"] for e in self.alert_events if e["event"] == "resolved")
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -78,6 +103,8 @@ class RunOutcome:
             "window_end": self.window_end.isoformat() if self.window_end else None,
             "rows_read": self.rows_read, "rows_dropped": self.rows_dropped,
             "verdicts": {k: dict(v) for k, v in self.verdicts.items()},
+            "alert_events": [dict(e) for e in self.alert_events],
+            "active_alerts": self.active_alerts, "delivery": dict(self.delivery),
         }
 
 
@@ -122,13 +149,32 @@ def run_monitor(
     store: HistoryStore | None = None,
     owner: str | None = None,
     now: dt.datetime | None = None,
+    functions: Mapping[str, Callable[[dict[str, Any]], Any]] | None = None,
+    deliver: bool = True,
+    sleep: Callable[[float], None] | None = None,
 ) -> RunOutcome:
     """Run one monitor for the slot ``as_of`` and record it in the history store.
 
     Returns a :class:`RunOutcome`; a failure inside the run does not raise but is
-    recorded (status ``failed``, its step and reason).  Only an invalid spec or an
-    unusable store raise (:class:`monitor.errors.ConfigurationError`,
-    :class:`monitor.errors.StorageError`), since then nothing can be recorded.
+    recorded (status ``failed``, its step and reason, and a data-problem alert).
+    Only an invalid spec or an unusable store raise
+    (:class:`monitor.errors.ConfigurationError`; a store that cannot be opened is
+    a configuration problem of ``history.store``), since then nothing can be
+    recorded.
+
+    Parameters
+    ----------
+    functions
+        Python functions for ``callable`` notification targets, by target name
+        (for ETL jobs; overrides the target's ``function`` key).
+    deliver
+        Send the monitor's undelivered messages after the run (default).  When
+        False they wait in the outbox for ``regwarden deliver`` or the next run.
+    sleep
+        Pause between tries of one delivery (injected by tests; ``time.sleep``).
+    now
+        The current instant (injected by tests): ledger times, alert times and
+        delivery times.  The run's data window depends on ``as_of`` only.
     """
     spec = config if isinstance(config, Spec) else load_spec(config)
     monitor = spec.monitor(name)
@@ -147,7 +193,13 @@ def run_monitor(
                                   "started_at": started_at,
                                   "detail": {"spec_digest": spec.digest,
                                              "spec_path": str(spec.path) if spec.path else None}}
+        label = alerting.run_label(slot, claim.attempt)
+        run_at = (now or dt.datetime.now(dt.UTC)).astimezone(dt.UTC)
+        previous: alerting.AlertingState | None = None
         try:
+            step("alert state")
+            previous = alerting.load_state(history, monitor.name, slot, claim.attempt)
+            annotations = history.annotations(monitor.name)
             step("source")
             source = open_source(monitor)
             columns = _needed_columns(monitor)
@@ -157,17 +209,32 @@ def run_monitor(
             rows: dict[str, list[Any]] = {"metrics": [], "coefficients": [], "comparisons": [],
                                           "verdicts": [], "checks": [], "baselines": []}
             verdicts: dict[str, Mapping[str, Any]] = {}
+            conditions: list[Condition] = []
+            watch: list[alerting.WatchEntry] = []
+            notes: dict[str, str] = {}
+            chosen_by_segment: dict[str, str] = {}
             rows_read = rows_dropped = 0
+            options = alerting.check_options(monitor.checks)
             for segment in segments:
                 chunks = _chunk_source(scan, monitor, segment)
                 chosen = history.chosen_model(monitor.name, segment) or \
                     history.chosen_model(monitor.name) or monitor.family.chosen
+                chosen_by_segment[segment] = chosen
                 family = _family_spec(monitor, chosen)
                 step(f"baseline{_label(segment)}")
                 baseline, new_baseline = _baseline_for(history, monitor, family, chosen,
-                                                       segment, source, columns)
+                                                       segment, source, columns, options)
                 step(f"evaluate{_label(segment)}")
-                night = _evaluate(monitor, family, chunks, scan, baseline)
+                try:
+                    night = _evaluate(monitor, family, chunks, scan, baseline, options)
+                except ModelFitError as error:
+                    if not monitor.segment_column:
+                        raise
+                    # one short segment must not stop the others: a data problem of its own
+                    conditions.append(Condition(
+                        "data_too_few_rows", "breached", "data", segment=segment,
+                        statistic_name="", subject="usable rows", detail=error.what))
+                    continue
                 report = night.report
                 data = report.to_dict()
                 verdicts[segment] = data["verdict"]
@@ -186,38 +253,214 @@ def run_monitor(
                     rows["baselines"].append(BaselineRow(
                         model=chosen, payload=snapshot.to_dict(), format_version=snapshot.version,
                         window_start=start, window_end=end, segment=segment))
+                step(f"watch{_label(segment)}")
+                current = new_baseline[0] if new_baseline is not None else baseline
+                entry, found, note = _watch(
+                    previous, monitor, night, chosen, segment, current, source, columns, scan,
+                    (window_start, window_end), slot, annotations)
+                notes[segment] = note
+                if entry is not None:
+                    watch.append(entry)
+                conditions += found
+                conditions += alerting.data_conditions(counts, segment=segment,
+                                                       alerts=monitor.alerts)
+                conditions += alerting.model_conditions(
+                    report, chosen=chosen, segment=segment, checks=monitor.checks,
+                    alerts=monitor.alerts,
+                    baseline_r_squared=entry.baseline_r_squared if entry else None)
+            if not verdicts:
+                raise ModelFitError("no segment of the window has enough usable rows",
+                                    where=f"monitor {monitor.name!r}, window "
+                                    f"{window_start.isoformat()}..{window_end.isoformat()}",
+                                    hint="check the source and the window")
+            step("rules")
+            watermark = scan.max_time
+            conditions += alerting.freshness_conditions(
+                watermark=watermark, previous=previous.watermark, slot_at=slot,
+                alerts=monitor.alerts, segmented=bool(monitor.segment_column))
+            people, retired = alerting.retire(
+                alerting.merge_people(previous.records, history.alerts(monitor.name),
+                                      monitor.name), chosen_by_segment, label=label,
+                run_at=run_at)
+            outcome, held = alerting.decide(
+                people, conditions, monitor=monitor.name, label=label, run_at=run_at,
+                policy=alerting.policy_of(monitor.alerts),
+                silenced=alerting.silenced_segments(annotations, slot))
+            newest = max((m for m in (watermark, previous.watermark) if m is not None),
+                         default=None)
+            state = alerting.AlertingState(outcome.records, tuple(watch), newest)
+            record["detail"] = dict(record["detail"], alerting=state.to_dict(),
+                                    watch_notes=notes,
+                                    silenced_conditions=[c.to_dict() for c in held],
+                                    suppressed_conditions=len(outcome.suppressed))
             step("history")
             record.update(rows_read=scan.rows or rows_read, rows_dropped=rows_dropped,
-                          watermark_at=scan.max_time, finished_at=dt.datetime.now(dt.UTC),
+                          watermark_at=watermark, finished_at=dt.datetime.now(dt.UTC),
                           timings=step.timings)
-            run_id = history.complete_run(claim, RunRecord(**record), now=now, **rows)
+            run_id = history.complete_run(
+                claim, RunRecord(**record), now=now,
+                alerts=[*map(alerting.record_row, retired),
+                        *alerting.alert_rows(outcome, conditions)],
+                deliveries=alerting.delivery_rows(outcome.events, monitor, label=label,
+                                                  created_at=run_at), **rows)
+            delivery = _deliver(history, monitor, deliver, functions, sleep, now)
             return RunOutcome(monitor.name, slot, "completed", run_id, None, None, window_start,
-                              window_end, int(scan.rows or rows_read), rows_dropped, verdicts)
+                              window_end, int(scan.rows or rows_read), rows_dropped, verdicts,
+                              alert_events=alerting.event_summary(outcome.events),
+                              active_alerts=len(outcome.active), delivery=delivery)
         except RegwardenError as error:
             return _record_failure(history, claim, monitor, slot, step, record, error,
-                                   error.kind, error.exit_code, now)
+                                   error.kind, error.exit_code, now, previous, label, run_at,
+                                   deliver, functions, sleep)
         except Exception as error:  # noqa: BLE001 - a bug must still leave a failed run behind
             logger.exception("monitor %r failed in step %s", monitor.name, step.name)
             return _record_failure(history, claim, monitor, slot, step, record, error,
-                                   "internal", 4, now)
+                                   "internal", 4, now, previous, label, run_at, deliver,
+                                   functions, sleep)
     finally:
         if own_store:
             history.close()
 
 
+def _deliver(history: HistoryStore, monitor: MonitorSpec, deliver: bool,
+             functions: Mapping[str, Callable[[dict[str, Any]], Any]] | None,
+             sleep: Callable[[float], None] | None,
+             now: dt.datetime | None) -> dict[str, Any]:
+    """Send the monitor's undelivered messages; a delivery problem never fails the run."""
+    if not deliver or not monitor.notify:
+        return {}
+    try:
+        report = alerting.deliver_monitor(history, monitor, now=now or dt.datetime.now(dt.UTC),
+                                          functions=functions, sleep=sleep)
+    except RegwardenError as error:  # e.g. the store went away after the run was recorded
+        logger.warning("monitor %r: delivery pass failed: %s", monitor.name, error)
+        return {"delivered": 0, "failed": 0, "error": str(error)}
+    if report.failed:
+        logger.warning("monitor %r: %d message(s) not delivered (kept for the next try)",
+                       monitor.name, len(report.failed))
+    return {"delivered": len(report.delivered), "failed": len(report.failed),
+            "errors": [error for _, error in report.failed],
+            "unknown_target": len(report.unknown_target)}
+
+
+def _watch(previous: alerting.AlertingState, monitor: MonitorSpec, night: Any, chosen: str,
+           segment: str, baseline: Any, source: Any, columns: list[str], scan: Any,
+           window: tuple[dt.datetime, dt.datetime], slot: dt.datetime,
+           annotations: Any) -> tuple[alerting.WatchEntry | None, list[Condition], str]:
+    """Advance the segment's sequential watch (see :func:`alerting.advance_watch`).
+
+    The reference is built from the baseline window's rows when the watch starts
+    (tonight's window when the baseline is made tonight); the rows scored are
+    those after the previous run's watermark (on a start night: after the
+    baseline window as well), within tonight's window.
+    """
+    if baseline is None:
+        return None, [], "no baseline"
+    design = night.pass_two.design
+    report = night.report
+    layout = alerting.watch_layout(design, report.family.names, chosen, report.nesting)
+    skip = alerting.silenced_ranges(annotations, segment)
+    window_start, window_end = window
+    base_start, base_end = _instant_or(baseline.window_start, window_start), \
+        _instant_or(baseline.window_end, window_end)
+    time_column, segment_column = monitor.source.time_column, monitor.segment_column
+
+    def reference_rows() -> tuple[np.ndarray, np.ndarray, float]:
+        rows = scan if (base_start, base_end) == (window_start, window_end) else \
+            source.scan(columns, base_start, base_end)
+        X, y, _ = alerting.gather_rows(rows, design, time_column=time_column,
+                                       segment_column=segment_column, segment=segment,
+                                       skip=skip)
+        days = max((base_end - base_start).total_seconds() / 86400.0, 1e-9)
+        return layout.local(X), y, max(X.shape[0] / days * _run_spacing_days(monitor, slot),
+                                       1e-3)
+
+    def new_rows(started: bool) -> tuple[np.ndarray, np.ndarray]:
+        after = previous.watermark
+        not_before = max(window_start, base_end) if started else window_start
+        if after is None and not started:
+            return layout.local(np.zeros((0, len(design.columns)))), np.zeros(0)
+        if not_before >= window_end:
+            return layout.local(np.zeros((0, len(design.columns)))), np.zeros(0)
+        start = not_before if after is None else max(not_before, after)
+        rows = source.scan(columns, start, window_end)
+        X, y, _ = alerting.gather_rows(rows, design, time_column=time_column,
+                                       segment_column=segment_column, segment=segment,
+                                       after=after, not_before=not_before, skip=skip)
+        return layout.local(X), y
+
+    return alerting.advance_watch(
+        previous.watch_of(segment), identity=alerting.baseline_identity(baseline, chosen),
+        layout=layout, reference_rows=reference_rows, new_rows=new_rows,
+        settings=monitor.alerts, model=chosen, segment=segment)
+
+
+def _instant_or(text: Any, default: dt.datetime) -> dt.datetime:
+    if not text:
+        return default
+    try:
+        moment = dt.datetime.fromisoformat(str(text))
+    except ValueError:
+        return default
+    return moment if moment.tzinfo else moment.replace(tzinfo=dt.UTC)
+
+
+def _run_spacing_days(monitor: MonitorSpec, slot: dt.datetime) -> float:
+    """Days between this slot and the next one of the schedule (1 without a schedule)."""
+    if monitor.schedule is None:
+        return 1.0
+    from .schedule import next_slot
+
+    following = next_slot(monitor, slot)
+    if following is None:
+        return 1.0
+    return max((following - slot).total_seconds() / 86400.0, 1e-6)
+
+
 def _record_failure(history: HistoryStore, claim: Any, monitor: MonitorSpec, slot: dt.datetime,
                     step: _Step, record: dict[str, Any], error: BaseException, kind: str,
-                    exit_code: int, now: dt.datetime | None) -> RunOutcome:
+                    exit_code: int, now: dt.datetime | None,
+                    previous: alerting.AlertingState | None, label: str, run_at: dt.datetime,
+                    deliver: bool, functions: Any, sleep: Any) -> RunOutcome:
     reason = str(error) if isinstance(error, RegwardenError) else \
         f"{type(error).__name__}: {error} (a bug; see the log)"
+    failed_step = step.name
     record.update(finished_at=dt.datetime.now(dt.UTC), timings=step.timings)
-    run_id = history.fail_run(claim, step.name, reason, run=RunRecord(**record),
-                              error_kind=kind, now=now)
+    alert_rows: list[AlertRow] = []
+    delivery_rows: list[DeliveryRow] = []
+    events: tuple[Mapping[str, Any], ...] = ()
+    active = 0
+    try:
+        # the failure becomes a data-problem alert, through the same rules as any finding
+        state = previous or alerting.load_state(history, monitor.name, slot, claim.attempt)
+        conditions = alerting.failure_conditions(error, failed_step)
+        people = alerting.merge_people(state.records, history.alerts(monitor.name),
+                                       monitor.name)
+        outcome, held = alerting.decide(
+            people, conditions, monitor=monitor.name, label=label, run_at=run_at,
+            policy=alerting.policy_of(monitor.alerts),
+            silenced=alerting.silenced_segments(history.annotations(monitor.name), slot))
+        kept = alerting.AlertingState(outcome.records, state.watch, state.watermark)
+        record["detail"] = dict(record.get("detail") or {}, alerting=kept.to_dict(),
+                                silenced_conditions=[c.to_dict() for c in held])
+        alert_rows = alerting.alert_rows(outcome, conditions)
+        delivery_rows = alerting.delivery_rows(outcome.events, monitor, label=label,
+                                               created_at=run_at)
+        events = alerting.event_summary(outcome.events)
+        active = len(outcome.active)
+    except Exception as problem:  # noqa: BLE001 - the failure itself must be recorded
+        logger.exception("monitor %r: the failure alert could not be prepared: %s",
+                         monitor.name, problem)
+    run_id = history.fail_run(claim, failed_step, reason, run=RunRecord(**record),
+                              error_kind=kind, alerts=alert_rows, deliveries=delivery_rows,
+                              now=now)
     logger.warning("monitor %r slot %s failed in step %s: %s", monitor.name, slot.isoformat(),
-                   step.name, reason)
-    return RunOutcome(monitor.name, slot, "failed", run_id, step.name, reason,
+                   failed_step, reason)
+    delivery = _deliver(history, monitor, deliver, functions, sleep, now)
+    return RunOutcome(monitor.name, slot, "failed", run_id, failed_step, reason,
                       record.get("window_start"), record.get("window_end"),
-                      exit_code=exit_code)
+                      exit_code=exit_code, alert_events=events, active_alerts=active,
+                      delivery=delivery)
 
 
 def _needed_columns(monitor: MonitorSpec) -> list[str]:
@@ -276,17 +519,18 @@ def _family_spec(monitor: MonitorSpec, chosen: str) -> Any:
 
 def _evaluate(monitor: MonitorSpec, family: Any,
               chunks: Callable[[], Iterator[Mapping[str, np.ndarray]]], scan: Any,
-              baseline: Any) -> Any:
+              baseline: Any, options: Any = None) -> Any:
     from ..stats.nightly import evaluate_night
 
     return evaluate_night(family, chunks, baseline=baseline,
                           time_column=monitor.source.time_column,
                           key_column=monitor.source.key_column or monitor.source.time_column,
-                          in_time_order=lambda: bool(scan.in_time_order))
+                          in_time_order=lambda: bool(scan.in_time_order), options=options)
 
 
 def _baseline_for(history: HistoryStore, monitor: MonitorSpec, family: Any, chosen: str,
-                  segment: str, source: Any, columns: list[str]) -> tuple[Any, Any]:
+                  segment: str, source: Any, columns: list[str],
+                  options: Any = None) -> tuple[Any, Any]:
     """(baseline to compare with tonight, new baseline row to store or None).
 
     The newest stored baseline of the chosen model is used unless a promotion came
@@ -309,7 +553,8 @@ def _baseline_for(history: HistoryStore, monitor: MonitorSpec, family: Any, chos
     if windows.baseline_start is None or windows.baseline_end is None:
         return None, None
     scan = source.scan(columns, windows.baseline_start, windows.baseline_end)
-    night = _evaluate(monitor, family, _chunk_source(scan, monitor, segment), scan, None)
+    night = _evaluate(monitor, family, _chunk_source(scan, monitor, segment), scan, None,
+                      options)
     snapshot = night.snapshot(window_start=windows.baseline_start.isoformat(),
                               window_end=windows.baseline_end.isoformat())
     return snapshot, (snapshot, windows.baseline_start, windows.baseline_end)

@@ -534,15 +534,21 @@ class HistoryStore:
     def fail_run(self, claim: SlotClaim, step: str, reason: str, *,
                  run: RunRecord | Mapping[str, Any] | None = None,
                  error_kind: str | None = None,
+                 alerts: Iterable[AlertRow | Mapping[str, Any]] = (),
+                 deliveries: Iterable[DeliveryRow | Mapping[str, Any]] = (),
                  now: dt.datetime | None = None) -> int:
         """Record a failed attempt (with the step and reason), in one transaction.
 
         The slot can be claimed again later (the next attempt is numbered on).
         ``error_kind`` is the short kind of the error (``RegwardenError.kind``).
-        Returns the ``run_id`` of the failed run's row.
+        ``alerts`` and ``deliveries`` (e.g. the data-problem alert the failure
+        raises, and its messages) are written in the same transaction, as in
+        :meth:`complete_run`.  Returns the ``run_id`` of the failed run's row.
         """
         run_record = (coerce_records(RunRecord, [run], argument="run")[0] if run is not None
                       else RunRecord())
+        alert_rows = coerce_records(AlertRow, alerts, argument="alerts")
+        delivery_rows = coerce_records(DeliveryRow, deliveries, argument="deliveries")
         moment = _now(now)
         with self._transaction(f"recording the failure of slot {claim.slot_at.isoformat()} "
                                f"of {claim.monitor!r}") as conn:
@@ -550,6 +556,8 @@ class HistoryStore:
             run_id = self._insert_run(conn, claim, run_record, "failed", moment,
                                       error_step=step, error_kind=error_kind,
                                       error_message=reason)
+            alert_ids = self._upsert_alerts(conn, claim.monitor, run_id, alert_rows, moment)
+            self._enqueue(conn, run_id, delivery_rows, alert_ids, moment)
             slots, attempts = self.tables.slots, self.tables.attempts
             conn.execute(slots.update()
                          .where(slots.c.monitor == claim.monitor,
@@ -744,6 +752,26 @@ class HistoryStore:
                 .where(runs.c.monitor == monitor, runs.c.status == "completed",
                        runs.c.watermark_at.is_not(None))
                 .order_by(runs.c.slot_at.desc(), runs.c.run_id.desc()).limit(1)).scalar()
+
+    def run_before(self, monitor: str, slot_at: dt.datetime,
+                   attempt: int | None = None) -> dict[str, Any] | None:
+        """The finished run (completed or failed) just before a slot, as a dict, or None.
+
+        "Before" orders runs by ``(slot_at, attempt)``: the latest earlier slot's
+        last attempt, or an earlier attempt of the same slot when ``attempt`` is
+        given.  The dict has the columns of the ``runs`` table (``detail`` as JSON data).
+        """
+        runs = self.tables.runs
+        slot = _utc(slot_at, name="slot_at")
+        earlier = runs.c.slot_at < slot
+        if attempt is not None:
+            earlier = earlier | ((runs.c.slot_at == slot) & (runs.c.attempt < attempt))
+        with self._reading("reading the previous run") as conn:
+            row = conn.execute(
+                sa.select(runs).where(runs.c.monitor == monitor, earlier)
+                .order_by(runs.c.slot_at.desc(), runs.c.attempt.desc(), runs.c.run_id.desc())
+                .limit(1)).mappings().first()
+        return dict(row) if row is not None else None
 
     # ------------------------------------------------------------------ alerts and outbox
 
