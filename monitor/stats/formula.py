@@ -42,6 +42,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from ..errors import DataValidationError, FormulaError
 
@@ -544,9 +545,10 @@ class Design:
             values = data[name]
             if name in self.categorical_columns:
                 text, missing = _as_text(values)
-                level_index = {level: i for i, level in enumerate(self.levels[name])}
-                code = np.fromiter((level_index.get(v, -1) if v is not None else -2 for v in text),
-                                   dtype=np.int64, count=n)
+                # hash lookup in C: -1 for a value outside the frozen levels (and missing)
+                code = pd.Index(self.levels[name], dtype=object).get_indexer(text).astype(
+                    np.int64)
+                code[missing] = -2
                 bad = missing | (code < 0)
                 unseen_mask = code == -1
                 if unseen_mask.any():
@@ -620,10 +622,13 @@ def _as_float(values: np.ndarray, name: str) -> np.ndarray:
 
 
 def _as_text(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Values of a categorical column as text (None where missing), and the missing mask."""
     array = np.asarray(values, dtype=object)
-    missing = np.fromiter(
-        (v is None or (isinstance(v, float) and math.isnan(v)) for v in array), dtype=bool,
-        count=len(array))
+    missing = np.asarray(pd.isna(array), dtype=bool)
+    if pd.api.types.infer_dtype(array, skipna=True) in ("string", "empty"):
+        text = array.copy()
+        text[missing] = None
+        return text, missing
     text = np.array([None if m else _level_text(v) for v, m in zip(array, missing, strict=True)],
                     dtype=object)
     return text, missing
