@@ -30,6 +30,7 @@ __all__ = ["COMMAND_MODULES", "build_parser", "main"]
 COMMAND_MODULES = ["_fit", "_check", "_validate", "_promote", "_annotate", "_store", "_compare"]
 COMMAND_MODULES += ["_history", "_report", "_changes"]
 COMMAND_MODULES += ["_run", "_serve", "_status", "_backfill"]
+COMMAND_MODULES += ["_alerts", "_deliver"]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -682,6 +682,21 @@ def advance_watch(entry: WatchEntry | None, *, identity: str, layout: WatchLayou
     per night estimated from them; ``new_rows(started_now)`` the rows to score.
     Returns the entry to keep, the conditions and a note for the run's detail.
     """
+    from threadpoolctl import threadpool_limits
+
+    # small matrices only (the charts' calibration solves 300 x 300 systems): BLAS
+    # threads cost more than they give, a lot more on a loaded machine
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _advance_watch(entry, identity=identity, layout=layout,
+                              reference_rows=reference_rows, new_rows=new_rows,
+                              settings=settings, model=model, segment=segment)
+
+
+def _advance_watch(entry: WatchEntry | None, *, identity: str, layout: WatchLayout,
+                   reference_rows: Callable[[], tuple[np.ndarray, np.ndarray, float]],
+                   new_rows: Callable[[bool], tuple[np.ndarray, np.ndarray]],
+                   settings: AlertSettings, model: str, segment: str
+                   ) -> tuple[WatchEntry | None, list[Condition], str]:
     from ..stats.sequential import ForecastReference
 
     started = entry is None or entry.baseline != identity or entry.model != model \
