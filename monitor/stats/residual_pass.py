@@ -761,9 +761,10 @@ def _accumulate_ordered(result: PassTwoResult, E: FloatArray, Z: FloatArray, key
     L = result.lags
     if L:
         ext = np.vstack([result.carry, E])
-        lagged = np.stack([ext[L - k: L - k + m] for k in range(1, L + 1)], axis=1)  # (m, L, M)
-        result.lag_sums[1:] += np.einsum("im,ikm->km", E, lagged)
-        result.z_lagged += (Z.T @ lagged.reshape(m, L * M)).reshape(-1, L, M)
+        for k in range(1, L + 1):
+            lagged = ext[L - k: L - k + m]        # a view: e_{t-k} beside row t
+            result.lag_sums[k] += np.einsum("ij,ij->j", E, lagged)
+            result.z_lagged[:, k - 1, :] += Z.T @ lagged
         if start < L:
             take = min(L - start, m)
             result.head[start:start + take] = E[:take]
