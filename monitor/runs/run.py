@@ -180,6 +180,7 @@ def run_monitor(
     monitor = spec.monitor(name)
     own_store = store is None
     history = open_store(spec) if store is None else store
+    sources: list[Any] = []
     try:
         slot = slot_of(as_of, now)
         claim = history.claim_slot(monitor.name, slot, owner or default_owner(), now=now)
@@ -202,6 +203,7 @@ def run_monitor(
             annotations = history.annotations(monitor.name)
             step("source")
             source = open_source(monitor)
+            sources.append(source)
             columns = _needed_columns(monitor)
             scan = source.scan(columns, window_start, window_end)
             step("evaluate")
@@ -318,6 +320,10 @@ def run_monitor(
                                    "internal", 4, now, previous, label, run_at, deliver,
                                    functions, sleep)
     finally:
+        for source in sources:
+            close = getattr(source, "close", None)
+            if close is not None:
+                close()
         if own_store:
             history.close()
 
