@@ -119,6 +119,7 @@ class WebhookReceiver:
         self.port = port or free_port()
         self.requests: list[tuple[dict[str, str], bytes]] = []
         self.accepted: dict[str, dict] = {}
+        self.acknowledged: list[str] = []  # keys answered 2xx, in order
         self.fail_next = 0
         self.server: ThreadingHTTPServer | None = None
         self.start()
@@ -136,6 +137,7 @@ class WebhookReceiver:
                     receiver.fail_next -= 1
                     self.send_response(500)
                 else:
+                    receiver.acknowledged.append(key)
                     self.send_response(200)
                 self.end_headers()
 
