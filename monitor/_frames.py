@@ -120,8 +120,12 @@ def _parquet_path(data: TableInput) -> Path | None:
 def _parquet_dataset(path: Path) -> Any:
     import pyarrow.dataset as pa_dataset
 
+    # pre_buffer=False: with pre-buffering pyarrow keeps every row group's column
+    # chunks it has read alive until the scan ends, so memory grew with the rows
+    parquet = pa_dataset.ParquetFileFormat(
+        default_fragment_scan_options=pa_dataset.ParquetFragmentScanOptions(pre_buffer=False))
     try:
-        return pa_dataset.dataset(path, format="parquet")
+        return pa_dataset.dataset(path, format=parquet)
     except (pa.ArrowInvalid, OSError) as error:
         raise SourceError(f"cannot read {str(path)!r}: {str(error).splitlines()[0]}",
                           where=str(path),
