@@ -135,7 +135,7 @@ def side_floor(path: str) -> dict[str, float]:
     started = time.perf_counter()
     R = np.zeros((0, len(COLUMNS) + 1))
     rows = 0
-    for batch in pq.ParquetFile(path).iter_batches(batch_size=CHUNK_ROWS,
+    for batch in pq.ParquetFile(path, pre_buffer=False).iter_batches(batch_size=CHUNK_ROWS,
                                                    columns=PREDICTORS + ["y"]):
         block = np.empty((batch.num_rows, len(COLUMNS) + 1))
         block[:, 0] = 1.0
