@@ -68,8 +68,13 @@ import pyarrow.compute as pc
 from storage.history import AlertRow, DeliveryRow, HistoryStore
 
 from .._frames import arrow_to_columns
-from ..errors import ConfigurationError, DataValidationError, ModelFitError, RegwardenError, \
-    SourceError
+from ..errors import (
+    ConfigurationError,
+    DataValidationError,
+    ModelFitError,
+    RegwardenError,
+    SourceError,
+)
 from .delivery import (
     CallableTarget,
     DeliveryReport,
@@ -86,8 +91,16 @@ from .delivery import (
     deliver_pending,
 )
 from .policy import AlertPolicy, WatchState, watch_night
-from .rules import ALERT_KINDS, AlertEvent, AlertKey, AlertRecord, Condition, Persistence, \
-    RuleOutcome, apply_rules
+from .rules import (
+    ALERT_KINDS,
+    AlertEvent,
+    AlertKey,
+    AlertRecord,
+    Condition,
+    Persistence,
+    RuleOutcome,
+    apply_rules,
+)
 from .spec import AlertSettings, ChecksSettings, MonitorSpec, NotifySpec
 
 __all__ = [

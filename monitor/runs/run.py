@@ -1,4 +1,4 @@
-"""One monitoring run: spec → source → family → checks → rules → history (one transaction) → delivery.
+"""One monitoring run: spec → source → family → checks → rules → history → delivery.
 
 ``run_monitor(config, name, as_of=None)`` resolves the fresh window for
 ``as_of`` (half-open ``[as_of − fresh, as_of)``), claims the slot in the run

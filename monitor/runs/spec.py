@@ -208,7 +208,7 @@ class AlertSettings:
 
 @dataclass(frozen=True, slots=True)
 class ChecksSettings:
-    """``[monitors.NAME.checks]``: mapped onto ``CheckOptions``; ``quiet`` checks raise no alerts."""
+    """``[monitors.NAME.checks]``: mapped onto ``CheckOptions``; ``quiet`` ones raise no alerts."""
 
     quiet: tuple[str, ...] = ()
     sample_size: int = 5000
@@ -677,10 +677,11 @@ def _parse_notify(items: list[Any], where: str, base: Path | None) -> tuple[Noti
         kind = _choice(reader, "kind", _NOTIFY_KINDS, ...)
         name = reader.get("name", str, kind)
         if not _NAME.match(name) or name in names:
+            problem = "used twice" if name in names else "not allowed"
             raise ConfigurationError(
-                f"{reader.key('name')} = {_show(name)} is {'used twice' if name in names else 'not allowed'}",
-                where=reader.key("name"), hint="give each target of the monitor its own name "
-                "(letters, digits, '_', '-', '.')")
+                f"{reader.key('name')} = {_show(name)} is {problem}", where=reader.key("name"),
+                hint="give each target of the monitor its own name (letters, digits, '_', '-', "
+                "'.')")
         names.add(name)
         severity = _choice(reader, "min_severity", _SEVERITIES,
                            "warning" if kind == "email" else "info")
