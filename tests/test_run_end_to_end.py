@@ -211,3 +211,24 @@ def test_a_promotion_restarts_the_watch_and_closes_the_old_models_alerts(
     watch = detail["alerting"]["watch"]
     assert [w["model"] for w in watch] == ["only_x"]
     assert "started" in detail["watch_notes"][""]
+
+
+def test_the_extrapolation_p_value_bounds_the_null_rate_of_flagged_rows() -> None:
+    """Generated data: the share of fresh rows outside a 90-row baseline's ranges (2 regressors)
+    stays below the bound p0 = (2q + 1)/(n + 1) that the p-value uses, and the p-value of
+    the expected count is large while a clear excess is small."""
+    import numpy as np
+
+    from monitor.runs.alerting import extrapolation_p_value
+
+    rng = np.random.default_rng(90)
+    n, m, q, flagged = 90, 90, 2, 0
+    for _ in range(400):
+        base, fresh = rng.normal(size=(n, q)), rng.normal(size=(m, q))
+        outside = (fresh > base.max(axis=0)) | (fresh < base.min(axis=0))
+        flagged += int(outside.any(axis=1).sum())
+    bound = (2 * q + 1) / (n + 1)
+    # exact expectation of the range part: at most 2q/(n + 1) = 0.044 per row
+    assert flagged / (400 * m) < 2 * q / (n + 1) < bound
+    assert extrapolation_p_value(5, m, n, q) > 0.3
+    assert extrapolation_p_value(30, m, n, q) < 1e-8

@@ -33,7 +33,8 @@ Which findings become conditions
   F-test (breached);
 * the chosen model's checks, grouped by what they test (:data:`CHECK_KINDS`):
   a check's own ``fail`` is breached, ``warn`` is watch, ``pass`` clean; those
-  with a p-value enter Benjamini–Hochberg across the run; checks listed in
+  with a p-value enter Benjamini–Hochberg across the run (the extrapolation
+  share gets one from :func:`extrapolation_p_value`); checks listed in
   ``[checks] quiet`` are left out;
 * the R² of the chosen model against the baseline's (``max_r_squared_drop``);
 * the sequential watch on the rows that are new since the last run;
@@ -370,9 +371,34 @@ def _finite(value: Any) -> float | None:
     return number if math.isfinite(number) else None
 
 
+def extrapolation_p_value(flagged: int, rows: int, baseline_rows: int,
+                          regressors: int) -> float | None:
+    """p-value of ``flagged`` of ``rows`` fresh rows being flagged as extrapolation.
+
+    Notes
+    -----
+    A regwarden approximation, no published source.  Under an unchanged process
+    with exchangeable rows, a fresh row exceeds the maximum (or falls below the
+    minimum) of ``n`` baseline values of one regressor with probability
+    ``1/(n + 1)``, and its leverage exceeds the baseline's largest with about the
+    same probability; the union of the ``2q + 1`` events has probability at most
+    ``p0 = (2q + 1)/(n + 1)`` (Bonferroni).  The p-value is the binomial upper tail
+    ``P(X ≥ flagged)``, ``X ~ Bin(rows, p0)``.  The check's own thresholds (1 % /
+    5 %) are below ``p0`` for baselines of fewer than about 100 rows, where a
+    stable process would trip them every other night; this p-value lets the
+    false-discovery control judge the count instead.
+    """
+    if rows <= 0 or baseline_rows <= 0:
+        return None
+    from scipy import stats
+
+    p0 = min(1.0, (2 * regressors + 1) / (baseline_rows + 1))
+    return float(stats.binom.sf(flagged - 1, rows, p0))
+
+
 def model_conditions(report: Any, *, chosen: str, segment: str, checks: ChecksSettings,
-                     alerts: AlertSettings, baseline_r_squared: float | None
-                     ) -> list[Condition]:
+                     alerts: AlertSettings, baseline_r_squared: float | None,
+                     baseline_rows: int | None = None) -> list[Condition]:
     """Conditions from the family verdict, the chosen model's checks and its R²."""
     verdict = report.verdict
     conditions: list[Condition] = []
@@ -399,6 +425,12 @@ def model_conditions(report: Any, *, chosen: str, segment: str, checks: ChecksSe
                 or result.verdict not in _CHECK_VERDICTS:
             continue
         p_value = _finite(result.p_value)
+        if result.check == "extrapolation" and baseline_rows and p_value is None:
+            fit = report.fits.get(chosen)
+            regressors = int(fit.rank) - int(bool(fit.has_intercept)) if fit else 1
+            p_value = extrapolation_p_value(int(result.detail.get("rows_flagged", 0)),
+                                            int(result.rows), int(baseline_rows),
+                                            max(regressors, 1))
         threshold = None if p_value is not None else _finite(result.thresholds.get("fail"))
         conditions.append(Condition(
             kind, _CHECK_VERDICTS[result.verdict], "window", model=chosen, segment=segment,

@@ -269,7 +269,8 @@ def run_monitor(
                 conditions += alerting.model_conditions(
                     report, chosen=chosen, segment=segment, checks=monitor.checks,
                     alerts=monitor.alerts,
-                    baseline_r_squared=entry.baseline_r_squared if entry else None)
+                    baseline_r_squared=entry.baseline_r_squared if entry else None,
+                    baseline_rows=baseline.n if baseline is not None else None)
             if not verdicts:
                 raise ModelFitError("no segment of the window has enough usable rows",
                                     where=f"monitor {monitor.name!r}, window "
