@@ -18,6 +18,7 @@ that the next completed run clears; the slot can be run again.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import getpass
 import logging
@@ -244,6 +245,7 @@ def run_monitor(
                 rows_read += int(counts.get("rows_read", 0))
                 rows_dropped += int(counts.get("dropped_rows", 0))
                 _collect_rows(rows, report, data, monitor, segment)
+                _attach_sample(rows["checks"], night, chosen, segment)
                 if new_baseline is None and baseline is None:
                     # no baseline yet: tonight's window becomes it (drift is judged from the
                     # next night on)
@@ -572,6 +574,21 @@ def _number(value: Any) -> float | None:
         return None
     number = float(value)
     return number if math.isfinite(number) else None
+
+
+def _attach_sample(checks: list[Any], night: Any, chosen: str, segment: str) -> None:
+    """Keep a bounded, time-ordered sample of the chosen model's rows with its ``cusum`` row.
+
+    The report draws tonight's errors over time and against the predictions from it
+    (:func:`monitor.stats.nightly.NightlyEvaluation.sample_view`).
+    """
+    view = night.sample_view(chosen)
+    if not view:
+        return
+    for index, row in enumerate(checks):
+        if row.model == chosen and row.segment == segment and row.check == "cusum":
+            checks[index] = dataclasses.replace(row, detail={**(row.detail or {}), **view})
+            return
 
 
 def _collect_rows(rows: dict[str, list[Any]], report: Any, data: Mapping[str, Any],

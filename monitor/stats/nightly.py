@@ -15,6 +15,7 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
+import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ..errors import ConfigurationError
@@ -37,10 +38,47 @@ class NightlyEvaluation:
     pass_two: PassTwoResult
     changes: Mapping[str, Any]
 
+    def sample_view(self, name: str, *, limit: int = 400) -> dict[str, Any]:
+        """A bounded, time-ordered sample of one candidate's rows for the report's views.
+
+        ``sample``: key (the time, or the key column), fitted value and residual of up to
+        ``limit`` rows drawn by pass 2's seeded reservoir; ``forecast_errors``: the frozen
+        baseline model's errors on the same rows (absent without a baseline).
+        """
+        two = self.pass_two
+        m = self.report.family.names.index(name)
+        keys = two.sample_keys
+        if keys.size == 0:
+            return {}
+        order = np.argsort(keys, kind="stable")
+        if order.size > limit:
+            order = np.sort(order[np.linspace(0, order.size - 1, limit).astype(int)])
+            order = order[np.argsort(keys[order], kind="stable")]
+        at = [_plain_key(k) for k in keys[order]]
+        view: dict[str, Any] = {"sample": {
+            "at": at, "key": at,
+            "fitted": [float(v) for v in two.sample_fitted[order, m]],
+            "residual": [float(v) for v in two.sample_residuals[order, m]]}}
+        if two.sample_frozen.size and two.sample_frozen.shape[0] == keys.size:
+            view["forecast_errors"] = {"at": at,
+                                       "error": [float(v) for v in two.sample_frozen[order, m]]}
+        return view
+
     def snapshot(self, *, window_start: str | None = None,
                  window_end: str | None = None) -> BaselineSnapshot:
         """This window summarised as a baseline for later nights."""
         return build_snapshot(self.pass_two, window_start=window_start, window_end=window_end)
+
+
+def _plain_key(value: Any) -> Any:
+    """A row key as JSON-ready text or number (instants as ISO text, UTC)."""
+    if isinstance(value, np.datetime64):
+        return str(np.datetime_as_string(value, unit="s", timezone="UTC"))
+    if isinstance(value, (np.integer, np.floating)):
+        return value.item()
+    if hasattr(value, "isoformat"):
+        return value.isoformat()
+    return value if isinstance(value, (int, float, str)) else str(value)
 
 
 def baseline_fits_family(baseline: BaselineSnapshot, spec: FamilySpec) -> bool:

@@ -245,6 +245,8 @@ class PassTwoResult:
     sample_residuals: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
     sample_frozen: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
     sample_design: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
+    sample_keys: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=object))
+    sample_fitted: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
     # residual histogram on a fine grid (baseline quantile bins)
     grid_low: FloatArray = field(default_factory=lambda: np.zeros(0))
     grid_width: FloatArray = field(default_factory=lambda: np.zeros(0))
@@ -547,6 +549,7 @@ def residual_pass(
     capacity = max(int(options.sample_size), 0)
     result.sample_residuals = np.zeros((0, M))
     result.sample_design = np.zeros((0, q))
+    result.sample_fitted = np.zeros((0, M))
     # fine grid of residuals around the pass-1 mean, ±8 SD
     G = options.grid_bins
     safe_sigma = np.where(sigma > 0, sigma, 1.0)
@@ -739,7 +742,8 @@ def residual_pass(
         priority = generator.random(m)
         if capacity:
             _offer_sample(result, capacity, priority, E, X,
-                          both[:, M:] if frozen_B is not None else None)
+                          both[:, M:] if frozen_B is not None else None,
+                          keys=np.asarray(keys, dtype=object), fitted=y[:, None] - E)
         result.n += m
     if result.n != n_total:
         raise ValueError(f"pass 2 saw {result.n} usable rows but pass 1 saw {n_total}; the "
@@ -864,25 +868,31 @@ def _accumulate_frozen(result: PassTwoResult, F: FloatArray, X: FloatArray, Z: F
 
 
 def _offer_sample(result: PassTwoResult, capacity: int, priority: FloatArray, E: FloatArray,
-                  X: FloatArray, frozen: FloatArray | None) -> None:
+                  X: FloatArray, frozen: FloatArray | None, *, keys: np.ndarray,
+                  fitted: FloatArray) -> None:
+    """Keep the rows with the ``capacity`` smallest random priorities (with their keys)."""
     current = result.sample_priority
     if current.size >= capacity:
         keep = priority < current.max()
         if not keep.any():
             return
-        priority, E, X = priority[keep], E[keep], X[keep]
+        priority, E, X, keys, fitted = priority[keep], E[keep], X[keep], keys[keep], fitted[keep]
         frozen = None if frozen is None else frozen[keep]
     all_priority = np.concatenate([current, priority])
     all_E = np.vstack([result.sample_residuals, E])
     all_X = np.vstack([result.sample_design, X])
+    all_keys = np.concatenate([result.sample_keys, keys])
+    all_fitted = np.vstack([result.sample_fitted, fitted])
     all_F = None if frozen is None else np.vstack([result.sample_frozen, frozen])
     if all_priority.size > capacity:
         pick = np.argpartition(all_priority, capacity - 1)[:capacity]
         pick.sort()
         all_priority, all_E, all_X = all_priority[pick], all_E[pick], all_X[pick]
+        all_keys, all_fitted = all_keys[pick], all_fitted[pick]
         all_F = None if all_F is None else all_F[pick]
     result.sample_priority, result.sample_residuals, result.sample_design = (
         all_priority, all_E, all_X)
+    result.sample_keys, result.sample_fitted = all_keys, all_fitted
     if all_F is not None:
         result.sample_frozen = all_F
 
