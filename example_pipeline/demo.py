@@ -35,7 +35,7 @@ import pandas as pd
 
 from example_pipeline.etl import MONITOR, nightly
 from example_pipeline.generate import generate
-from example_pipeline.scenario import EVENTS, SUBSTATION_NAMES, PlantedEvent
+from example_pipeline.scenario import DEFAULT_SEED, EVENTS, SUBSTATION_NAMES, PlantedEvent
 
 __all__ = ["DemoResult", "main", "run_demo"]
 
@@ -71,10 +71,8 @@ def _opened_alerts(store: object) -> pd.DataFrame:
     events = store.alert_events(MONITOR)  # type: ignore[attr-defined]
     if events.empty:
         return pd.DataFrame(columns=["segment", "model", "kind", "slot_at", "severity"])
-    alerts = store.alerts(MONITOR)  # type: ignore[attr-defined]
     runs = store.runs(MONITOR)  # type: ignore[attr-defined]
-    opened = events[events["state"] == "open"].merge(
-        alerts[["alert_id", "segment", "model", "kind"]], on="alert_id")
+    opened = events[events["state"] == "open"].drop_duplicates("alert_id", keep="first")
     opened = opened.merge(runs[["run_id", "slot_at"]], on="run_id", how="inner")
     columns = ["segment", "model", "kind", "slot_at", "severity"]
     return opened[columns].sort_values("slot_at").reset_index(drop=True)
@@ -103,7 +101,8 @@ def _in_stable_stretch(segment: str, slot: pd.Timestamp) -> bool:
 
 
 def run_demo(workdir: str | Path, *, step_days: int = 7, start: dt.date = REPLAY_START,
-             end: dt.date = REPLAY_END, report: bool = True, quiet: bool = False) -> DemoResult:
+             end: dt.date = REPLAY_END, report: bool = True, quiet: bool = False,
+             seed: int = DEFAULT_SEED) -> DemoResult:
     """Generate, replay the pipeline from ``start`` to ``end``, and summarise (see module doc)."""
     from monitor.runs._build import open_store
     from monitor.runs.spec import load_spec
@@ -117,7 +116,7 @@ def run_demo(workdir: str | Path, *, step_days: int = 7, start: dt.date = REPLAY
     say = (lambda text: None) if quiet else (lambda text: print(text, flush=True))
     say(f"[1/4] generating invented readings of {len(SUBSTATION_NAMES)} substations "
         f"through {start - dt.timedelta(days=1)} into {workdir}")
-    generate(workdir, as_of=start - dt.timedelta(days=1))
+    generate(workdir, as_of=start - dt.timedelta(days=1), seed=seed)
     say(f"[2/4] replaying the nightly pipeline {start} .. {end}, one run every {step_days} "
         "day(s)")
     runs = failed = 0
@@ -184,9 +183,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--step-days", type=int, default=7,
                         help="days between replayed runs (1 = every night; default 7)")
     parser.add_argument("--until", default=str(REPLAY_END), help="last day replayed (ISO)")
+    parser.add_argument("--seed", type=int, default=DEFAULT_SEED,
+                        help=f"seed of the invented data (default {DEFAULT_SEED})")
     options = parser.parse_args(argv)
     result = run_demo(options.workdir, step_days=options.step_days,
-                      end=dt.date.fromisoformat(options.until))
+                      end=dt.date.fromisoformat(options.until), seed=options.seed)
     print("[4/4] timeline")
     print(format_timeline(result))
     print()
