@@ -110,8 +110,11 @@ def test_psi_uses_the_baseline_quantile_bins_with_exact_counts(drifted):
     assert np.allclose(psi.detail["fresh_shares"], p_fresh, atol=1e-15)
     # decile bins: each baseline share is 10 % up to the grid resolution
     assert np.all(np.abs(p_base - 0.1) < 0.01)
-    # METHODS §10 [C]: PSI equals entropy(pF, pB) + entropy(pB, pF) (no empty bins here)
-    expected = stats.entropy(p_fresh, p_base) + stats.entropy(p_base, p_fresh)
+    # METHODS §10 [C]: PSI equals entropy(pF, pB) + entropy(pB, pF), here of the shares with
+    # half a row added to every bin (METHODS §10: "or add ½ to counts")
+    h_base = (base_counts + 0.5) / (base_counts + 0.5).sum()
+    h_fresh = (fresh_counts + 0.5) / (fresh_counts + 0.5).sum()
+    expected = stats.entropy(h_fresh, h_base) + stats.entropy(h_base, h_fresh)
     assert relative(psi.statistic, expected) < 1e-10
     assert psi.thresholds == {"warn": 0.1, "fail": 0.25}
 
@@ -191,6 +194,18 @@ def test_a_snapshot_of_another_family_is_refused():
     snapshot = build_baseline(baseline, "y ~ x1", options=CheckOptions(sample_size=50))
     with pytest.raises(ConfigurationError, match="another family"):
         check_data(fresh, "y ~ x1 + x2", baseline=snapshot)
+
+
+def test_an_empty_fresh_bin_counts_as_half_a_row_not_as_a_tiny_floor():
+    """One empty decile in a 90-row window: the floor 1e-6 would give PSI > 1 on its own."""
+    from monitor.stats.drift import half_row_shares
+
+    fresh = np.array([9, 9, 9, 9, 9, 9, 9, 9, 18, 0])
+    baseline = np.full(10, 36.5)
+    psi = population_stability_index(half_row_shares(baseline), half_row_shares(fresh))
+    floored = population_stability_index(baseline / baseline.sum(), fresh / fresh.sum())
+    assert floored > 1.0
+    assert 0.1 < psi < 0.5
 
 
 def test_population_stability_index_floors_empty_bins():
