@@ -74,7 +74,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -82,7 +82,15 @@ from scipy import stats
 
 from ..errors import ConfigurationError, FormulaError, ModelFitError
 from .engine import SubsetFactor
-from .fitting import ChunkSource, PassOne, derive_factor, pass_one, refine_factors, result_of
+from .fitting import (
+    ChunkSource,
+    PassOne,
+    _design_over_all_chunks,
+    derive_factor,
+    pass_one,
+    refine_factors,
+    result_of,
+)
 from .formula import CategoricalSpec, Design, ParsedFormula, parse_formula
 from .results import FitResult, to_jsonable
 
@@ -757,11 +765,16 @@ def prepare_candidates(
     *,
     design: Design | None = None,
     strict: bool = False,
+    read_again: Callable[[], Iterable[Mapping[str, Any]]] | None = None,
+    all_chunks: ChunkSource | None = None,
 ) -> tuple[PassOne, list[SubsetFactor]]:
     """Pass 1 over the union of the candidates' columns, and every candidate's factor.
 
     Refuses candidates that are the same model after encoding; too few rows for a
-    candidate names it.
+    candidate names it.  When the design is frozen here (``design`` is None) and a
+    level of an undeclared categorical column was missing from the first chunk,
+    ``all_chunks`` collects the levels over every chunk and ``read_again`` repeats
+    pass 1 with them (only then: most windows never pay for it).
     """
     formulas = [parse_formula(text) for text in spec.formulas]
     if design is not None and tuple(f.text for f in design.formulas) != spec.formulas:
@@ -770,6 +783,11 @@ def prepare_candidates(
                                  hint="rebuild the baseline design from this family's candidates")
     one = pass_one(chunks, formulas, design=design, categorical=spec.categorical_mapping(),
                    strict=strict)
+    if (design is None and one.totals.unseen_levels and read_again is not None
+            and all_chunks is not None):
+        full = _design_over_all_chunks(all_chunks, formulas, spec.categorical_mapping())
+        one = pass_one(read_again(), formulas, design=full,
+                       categorical=spec.categorical_mapping(), strict=strict)
     names = spec.names
     shapes: dict[tuple[frozenset[int], bool], str] = {}
     for name, (indices, has_intercept) in zip(names, one.design.models, strict=True):
@@ -855,7 +873,8 @@ def evaluate_family(
         reads += 1
         return chunks()
 
-    one, factors = prepare_candidates(spec, counted(), design=design, strict=strict)
+    one, factors = prepare_candidates(spec, counted(), design=design, strict=strict,
+                                      read_again=counted, all_chunks=chunks)
     if refinement_passes > 0:
         coefficients, ssr, steps = refine_factors(counted, one.design, factors,
                                                   max_passes=refinement_passes)

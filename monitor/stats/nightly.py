@@ -113,6 +113,10 @@ def evaluate_night(
     in_time_order
         Whether the rows came in time order; a callable is asked after read 1
         (a source knows only then).
+
+    Without a baseline, when a level of an undeclared categorical column was missing
+    from the first chunk (read 1 counted it as unseen), the levels are collected over
+    the whole window and read 1 is repeated, so such a level is still a level.
     """
     if baseline is not None and not baseline_fits_family(baseline, spec):
         raise ConfigurationError(
@@ -135,7 +139,9 @@ def evaluate_night(
     # with BLAS threads, every small solve paid the threads' start-up, ~100x its cost on a
     # loaded two-core machine.
     with threadpool_limits(limits=1, user_api="blas"):
-        one, factors = prepare_candidates(spec, counted(), strict=strict)
+        one, factors = prepare_candidates(
+            spec, counted(), strict=strict, read_again=None if baseline else counted,
+            all_chunks=chunks)
         ordered = in_time_order() if callable(in_time_order) else in_time_order
         two = residual_pass(counted(), one.design, one.state, factors, time_column=time_column,
                             key_column=key_column or time_column, in_time_order=ordered,
