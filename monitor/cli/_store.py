@@ -32,8 +32,9 @@ def register(subparsers: Any) -> None:
 
 
 def run_upgrade(options: argparse.Namespace) -> int:
-    from ..runs.spec import load_spec
     from storage.history import HistoryStore
+
+    from ..runs.spec import load_spec
 
     spec = load_spec(options.config)
     store = HistoryStore(spec.store_url, url_env=spec.store_env, table_prefix=spec.table_prefix)
