@@ -21,7 +21,7 @@ import numpy as np
 from ..errors import DataValidationError, ModelFitError
 from .engine import LeastSquaresState, SubsetFactor
 from .formula import CategoricalSpec, Design, ParsedFormula, _as_text, _level_order, build_design
-from .refine import GradientSums, accurate_residuals, correction, split
+from .refine import GradientSums, accumulate_family, correction
 from .results import FitResult, make_fit_result
 
 __all__ = [
@@ -213,20 +213,13 @@ def refine_factors(
         if not any(active):
             break
         sums = [GradientSums(f.n_parameters) for f in factors]
+        models = [(f.columns, f.has_intercept) for f in factors]
         for chunk in chunks():
             encoded = design.encode(chunk)
             if len(encoded.y) == 0:
                 continue
-            union_parts = split(encoded.X)  # each column split once, shared by the models
-            for m, factor in enumerate(factors):
-                if not active[m]:
-                    continue
-                columns = list(factor.columns)
-                X = encoded.X[:, columns]
-                parts = (union_parts[0][:, columns], union_parts[1][:, columns])
-                high, low = accurate_residuals(X, encoded.y, coefficients[m], factor.has_intercept,
-                                               parts)
-                sums[m].add(X, high, low, factor.has_intercept, parts)
+            accumulate_family(encoded.X, encoded.y, models, coefficients,
+                              [sums[m] if active[m] else None for m in range(len(factors))])
         for m, factor in enumerate(factors):
             if not active[m]:
                 continue

@@ -27,6 +27,7 @@ BIT 7, 257-278.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -37,6 +38,7 @@ from .engine import SubsetFactor
 
 __all__ = [
     "GradientSums",
+    "accumulate_family",
     "accurate_residuals",
     "accurate_sum",
     "correction",
@@ -160,6 +162,12 @@ class GradientSums:
             self._add_pair(position + j, high, low)
         self.ssr += float(np.dot(r_high, r_high) + 2.0 * np.dot(r_high, r_low))
 
+    def add_pairs(self, high: FloatArray, low: FloatArray) -> None:
+        """Add per-entry pairs ``(high, low)`` (one per parameter) accurately."""
+        total, error = two_sum(self.high, np.asarray(high, dtype=np.float64))
+        self.high = total
+        self.low = self.low + error + low
+
     def _add_entry(self, index: int, r_high: FloatArray, r_low: FloatArray) -> None:
         high, low = accurate_sum(r_high)
         self._add_pair(index, high, low + float(np.sum(r_low)))
@@ -177,6 +185,151 @@ class GradientSums:
     @property
     def gradient(self) -> FloatArray:
         return self.high + self.low
+
+
+def _row_sums(values: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Accurate sums of each row of a 2-D array, as pairs ``(high, low)``.
+
+    The same pairwise tree of :func:`two_sum` as :func:`accurate_sum`, but on
+    contiguous halves of every row at once (summation order does not matter to
+    an error-free tree), so each level is a handful of vectorised operations.
+    """
+    level = values
+    errors = np.zeros(values.shape[0])
+    while level.shape[1] > 1:
+        n = level.shape[1]
+        half = n // 2
+        a = level[:, :half]
+        b = level[:, half:2 * half]
+        s = a + b
+        bb = s - a
+        t = s - bb
+        np.subtract(a, t, out=t)
+        np.subtract(b, bb, out=bb)
+        t += bb
+        errors += t.sum(axis=1)
+        if n % 2:
+            first, error = two_sum(s[:, 0], level[:, n - 1])
+            s[:, 0] = first
+            errors += error
+        level = s
+    high = level[:, 0].copy() if level.shape[1] else np.zeros(values.shape[0])
+    total, low = two_sum(high, errors)
+    return total, low
+
+
+def accumulate_family(
+    X: FloatArray,
+    y: FloatArray,
+    models: Sequence[tuple[Sequence[int], bool]],
+    coefficients: Sequence[FloatArray],
+    sums: Sequence[GradientSums | None],
+) -> None:
+    """Accurate residuals and gradient sums of several models over one chunk.
+
+    ``X`` holds the union design's columns of the chunk (rows x columns, no
+    intercept column), ``models[m] = (columns into X, has_intercept)``,
+    ``coefficients[m]`` the model's coefficients (intercept first when present);
+    ``sums[m]`` receives the chunk (``None`` skips the model).  The same
+    arithmetic as :func:`accurate_residuals` followed by :meth:`GradientSums.add`,
+    arranged for speed: the design is transposed so that every column is
+    contiguous and split once for every model, each residual column update is
+    done in place in reused buffers, and each model's gradient entries are formed
+    for all of its columns at once.
+    """
+    y = np.asarray(y, dtype=np.float64)
+    rows = X.shape[0]
+    # rows in blocks small enough that the work arrays stay in a core's cache
+    for start in range(0, rows, _BLOCK_ROWS):
+        stop = min(start + _BLOCK_ROWS, rows)
+        _accumulate_block(X[start:stop], y[start:stop], models, coefficients, sums)
+
+
+#: Rows per block of :func:`accumulate_family` (its work arrays then fit in L2 cache).
+_BLOCK_ROWS = 8192
+
+
+def _accumulate_block(
+    X: FloatArray,
+    y: FloatArray,
+    models: Sequence[tuple[Sequence[int], bool]],
+    coefficients: Sequence[FloatArray],
+    sums: Sequence[GradientSums | None],
+) -> None:
+    XT = np.ascontiguousarray(X.T)
+    XT_high, XT_low = _split(XT)
+    m = XT.shape[1]
+    high = np.empty(m)
+    low = np.empty(m)
+    product = np.empty(m)
+    error = np.empty(m)
+    work = np.empty(m)
+    for (columns, has_intercept), b, target in zip(models, coefficients, sums, strict=True):
+        if target is None:
+            continue
+        columns = [int(c) for c in columns]
+        high[:] = y
+        low[:] = 0.0
+        slopes = b
+        if has_intercept:
+            _two_sum_into(high, np.float64(-b[0]), low, work, error)
+            slopes = b[1:]
+        for j, coefficient in zip(columns, slopes, strict=True):
+            minus_b = np.float64(-coefficient)
+            b_high, b_low = _split(minus_b)
+            x, x_high, x_low = XT[j], XT_high[j], XT_low[j]
+            # Dekker: product + error == x * (-b)
+            np.multiply(x, minus_b, out=product)
+            np.multiply(x_high, b_high, out=error)
+            error -= product
+            np.multiply(x_high, b_low, out=work)
+            error += work
+            np.multiply(x_low, b_high, out=work)
+            error += work
+            np.multiply(x_low, b_low, out=work)
+            error += work
+            low += error
+            _two_sum_into(high, product, low, work, error)
+        r_high = high + low
+        r_low = low - (r_high - high)
+        entries_high = []
+        entries_low = []
+        if has_intercept:
+            h, lo = _row_sums(r_high[None, :])
+            entries_high.append(h)
+            entries_low.append(lo + float(np.sum(r_low)))
+        if columns:
+            Xm = XT[columns]
+            Xm_high = XT_high[columns]
+            Xm_low = XT_low[columns]
+            r_hh, r_hl = _split(r_high)
+            P = Xm * r_high
+            E = Xm_high * r_hh
+            E -= P
+            T = Xm_high * r_hl
+            E += T
+            np.multiply(Xm_low, r_hh, out=T)
+            E += T
+            np.multiply(Xm_low, r_hl, out=T)
+            E += T
+            h, lo = _row_sums(P)
+            entries_high.append(h)
+            entries_low.append(lo + E.sum(axis=1) + Xm @ r_low)
+        target.add_pairs(np.concatenate(entries_high), np.concatenate(entries_low))
+        target.ssr += float(np.dot(r_high, r_high) + 2.0 * np.dot(r_high, r_low))
+
+
+def _two_sum_into(high: FloatArray, addend: FloatArray | np.float64, low: FloatArray,
+                  work: FloatArray, error: FloatArray) -> None:
+    """``high, e = two_sum(high, addend)``; ``low += e``, in place (``work``/``error`` scratch)."""
+    np.add(high, addend, out=work)            # s
+    np.subtract(work, high, out=error)        # bb = s - a
+    np.subtract(addend, error, out=error)     # b - bb
+    low += error
+    np.subtract(work, np.subtract(work, high, out=error), out=error)  # s - bb
+    np.subtract(high, error, out=error)       # a - (s - bb)
+    low += error
+    high[:] = work
 
 
 def correction(factor: SubsetFactor, gradient: FloatArray) -> FloatArray:
