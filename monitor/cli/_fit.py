@@ -7,7 +7,7 @@ from typing import Any
 
 from ..errors import EXIT_OK
 from ..stats.results import FitResult
-from ._output import add_format_option, emit_json, emit_text, fmt, render_table
+from ._output import add_format_option, emit_json, emit_text, render_table
 
 
 def register(subparsers: Any) -> None:
