@@ -59,7 +59,7 @@ from scipy.linalg import solve_triangular
 from .._types import FloatArray
 from .engine import LeastSquaresState, SubsetFactor
 from .formula import Design
-from .refine import GradientSums, accurate_residuals, correction
+from .refine import GradientSums, accumulate_family, correction
 
 if TYPE_CHECKING:
     from .drift import BaselineSnapshot
@@ -583,6 +583,9 @@ def residual_pass(
         result.sample_frozen = np.zeros((0, M))
     B_all = B if frozen_B is None else np.hstack([B, frozen_B])
     result.gradients = [GradientSums(f.n_parameters) for f in factors] if options.refine else []
+    refine_models = [(f.columns, f.has_intercept) for f in factors]
+    refine_targets = [g if f.n_parameters else None
+                      for f, g in zip(factors, result.gradients, strict=False)]
     buffer: FloatArray | None = None
     rows_before = 0
 
@@ -692,13 +695,7 @@ def residual_pass(
                 result.top[name][index].offer(values, row_numbers, keys, e, h)
         # ---- refinement step sums
         if options.refine:
-            for index, factor in enumerate(factors):
-                if factor.n_parameters == 0:
-                    continue
-                X_model = X[:, list(factor.columns)]
-                high, low = accurate_residuals(X_model, y, coefficients[index],
-                                               factor.has_intercept)
-                result.gradients[index].add(X_model, high, low, factor.has_intercept)
+            accumulate_family(X, y, refine_models, coefficients, refine_targets)
         # ---- time order
         if result.ordered and time_column is not None:
             times = _time_values(chunk, time_column)[encoded.usable]
