@@ -16,6 +16,7 @@ import json
 from pathlib import Path
 from typing import Any
 
+from monitor.cli._common import parse_instant
 from monitor.cli._output import emit_json, emit_text, note, render_table
 from monitor.errors import EXIT_OK, ConfigurationError
 
@@ -57,18 +58,8 @@ def add_monitor_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def instant(text: str | None, option: str) -> dt.datetime | None:
-    """An ISO date or date-time option as an aware UTC instant (a date means its midnight)."""
-    if text is None:
-        return None
-    try:
-        moment = dt.datetime.fromisoformat(text)
-    except ValueError:
-        raise ConfigurationError(f"{option} must be an ISO date or date-time, got {text!r}",
-                                 where=option, hint="for example 2025-03-01 or "
-                                 "2025-03-01T06:00+01:00") from None
-    if moment.tzinfo is None:
-        moment = moment.replace(tzinfo=dt.UTC)
-    return moment.astimezone(dt.UTC)
+    """An optional ISO date or date-time option as an aware UTC instant."""
+    return None if text is None else parse_instant(text, option)
 
 
 def open_monitor(options: argparse.Namespace) -> tuple[Any, Any, Any]:
