@@ -510,6 +510,8 @@ def residual_pass(
     }
     inverse_triangular = [solve_triangular(layout.R, np.eye(layout.R.shape[0]), lower=False)
                  if layout.R.size else np.zeros((0, 0)) for layout in layouts]
+    influence = _influence_layout(layouts, inverse_triangular, df_ext, p_all, sigma2, n_total,
+                                  cut, q)
     # time order and lags
     result.ordered = bool(in_time_order and time_column is not None)
     if time_column is None:
@@ -661,38 +663,9 @@ def residual_pass(
         result.ff[2] += np.einsum("ij,ij->j", F3, F3)
         result.fe[0] += np.einsum("ij,ij->j", F2, E)
         result.fe[1] += np.einsum("ij,ij->j", F3, E)
-        # ---- influence, per model
-        for index, layout in enumerate(layouts):
-            p = layout.R.shape[0]
-            if p == 0 or df_ext[index] <= 0:
-                continue
-            W = Z[:, list(layout.own)]
-            if layout.own_offset.any():
-                W = W + layout.own_offset
-            H = W @ inverse_triangular[index]
-            h = np.einsum("ij,ij->i", H, H)
-            e = E[:, index]
-            result.max_leverage[index] = max(result.max_leverage[index], float(h.max()))
-            one_minus = 1.0 - h
-            with np.errstate(divide="ignore", invalid="ignore"):
-                s2_i = ((n_total - p) * sigma2[index] - e * e / one_minus) / df_ext[index]
-                t_ext = e / np.sqrt(s2_i * one_minus)
-                cooks = e * e * h / (p * sigma2[index] * one_minus**2)
-                dffits = t_ext * np.sqrt(h / one_minus)
-            t_abs = np.where(np.isfinite(t_ext), np.abs(t_ext), 0.0)
-            cooks = np.where(np.isfinite(cooks), cooks, 0.0)
-            dffits_abs = np.where(np.isfinite(dffits), np.abs(dffits), 0.0)
-            counts = result.influence_counts
-            counts["leverage_2p"][index] += np.count_nonzero(h > cut["leverage_2p"][index])
-            counts["leverage_3p"][index] += np.count_nonzero(h > cut["leverage_3p"][index])
-            counts["cooks_4n"][index] += np.count_nonzero(cooks > cut["cooks_4n"][index])
-            counts["cooks_median"][index] += np.count_nonzero(cooks > cut["cooks_median"][index])
-            counts["cooks_1"][index] += np.count_nonzero(cooks > 1.0)
-            counts["dffits"][index] += np.count_nonzero(dffits_abs > cut["dffits"][index])
-            counts["bonferroni"][index] += np.count_nonzero(t_abs > cut["bonferroni"][index])
-            for name, values in (("studentized", t_abs), ("cooks", cooks), ("leverage", h),
-                                 ("dffits", dffits_abs)):
-                result.top[name][index].offer(values, row_numbers, keys, e, h)
+        # ---- influence, all models at once
+        if influence.index.size:
+            _accumulate_influence(result, influence, Z, E, row_numbers, keys)
         # ---- refinement step sums
         if options.refine:
             accumulate_family(X, y, refine_models, coefficients, refine_targets)
@@ -750,6 +723,111 @@ def residual_pass(
     _finish_refinement(result)
     return result
 
+
+@dataclass(frozen=True, slots=True)
+class _Influence:
+    """What the per-row influence measures of pass 2 need, arranged for all models at once.
+
+    ``index``: the models with influence measures (``p > 0`` and a positive external df);
+    ``combined``: positions (into ``index``) of the models whose leverages come from one
+    product ``Gᵀ Zᵀ`` (``G`` holds each such model's ``R⁻¹`` in its own rows and its own
+    block of columns; ``block_sum`` adds up the squares of each block); ``separate``:
+    positions of the models without intercept, whose uncentred working design
+    ``Z[:, own] + offset`` is formed apart (adding the offset after the product would
+    cancel digits when the data sit far from their mean).
+    """
+
+    index: np.ndarray
+    combined: np.ndarray
+    G: FloatArray
+    block_sum: FloatArray
+    separate: tuple[int, ...]
+    separate_inverse: dict[int, FloatArray]
+    scaled_ssr: FloatArray      # (n − p)·σ̂²
+    df_ext: FloatArray
+    p_sigma2: FloatArray        # p·σ̂²
+    cut: dict[str, FloatArray]
+
+
+def _influence_layout(layouts: Sequence[ModelLayout], inverse_triangular: Sequence[FloatArray],
+                      df_ext: FloatArray, p_all: FloatArray, sigma2: FloatArray, n_total: int,
+                      cut: Mapping[str, FloatArray], q: int) -> _Influence:
+    index = np.array([i for i, layout in enumerate(layouts)
+                      if layout.R.shape[0] > 0 and df_ext[i] > 0], dtype=np.int64)
+    combined = [pos for pos, i in enumerate(index) if not layouts[i].own_offset.any()]
+    separate = tuple(pos for pos, i in enumerate(index) if layouts[i].own_offset.any())
+    width = sum(layouts[index[pos]].R.shape[0] for pos in combined)
+    G = np.zeros((q + 1, width))
+    block_sum = np.zeros((len(combined), width))
+    column = 0
+    for row, pos in enumerate(combined):
+        i = index[pos]
+        p = layouts[i].R.shape[0]
+        G[list(layouts[i].own), column:column + p] = inverse_triangular[i]
+        block_sum[row, column:column + p] = 1.0
+        column += p
+    return _Influence(
+        index=index, combined=np.array(combined, dtype=np.int64), G=G,
+        block_sum=block_sum, separate=separate,
+        separate_inverse={pos: inverse_triangular[index[pos]] for pos in separate},
+        scaled_ssr=(n_total - p_all[index]) * sigma2[index], df_ext=df_ext[index],
+        p_sigma2=p_all[index] * sigma2[index],
+        cut={name: np.asarray(values)[index] for name, values in cut.items()})
+
+
+def _accumulate_influence(result: PassTwoResult, influence: _Influence, Z: FloatArray,
+                          E: FloatArray, row_numbers: np.ndarray, keys: np.ndarray) -> None:
+    """Leverage, externally studentized residuals, Cook's distance and DFFITS of one chunk.
+
+    Kept only as counts above the cut-offs and the top rows of each measure.
+    """
+    # rows of the arrays below are models, so every reduction runs along contiguous memory
+    index = influence.index
+    m = Z.shape[0]
+    h = np.empty((index.size, m))
+    if influence.combined.size:
+        H = influence.G.T @ Z.T
+        np.multiply(H, H, out=H)
+        h[influence.combined] = influence.block_sum @ H
+    for pos in influence.separate:
+        layout = result.layouts[index[pos]]
+        W = Z[:, list(layout.own)] + layout.own_offset
+        Hm = W @ influence.separate_inverse[pos]
+        h[pos] = np.einsum("ij,ij->i", Hm, Hm)
+    e = np.ascontiguousarray(E.T[index])
+    result.max_leverage[index] = np.maximum(result.max_leverage[index], h.max(axis=1))
+    one_minus = 1.0 - h
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        e2 = e * e
+        s2_i = (influence.scaled_ssr[:, None] - e2 / one_minus) / influence.df_ext[:, None]
+        s2_i *= one_minus
+        np.sqrt(s2_i, out=s2_i)
+        t_ext = e / s2_i
+        cooks = e2 * h
+        cooks /= influence.p_sigma2[:, None] * one_minus**2
+        ratio = h / one_minus
+        np.sqrt(ratio, out=ratio)
+        dffits = np.multiply(t_ext, ratio, out=ratio)
+    # a non-finite measure (a row with leverage 1) counts as 0, as before
+    t_abs = np.nan_to_num(np.abs(t_ext, out=t_ext), nan=0.0, posinf=0.0, copy=False)
+    cooks = np.nan_to_num(cooks, nan=0.0, posinf=0.0, neginf=0.0, copy=False)
+    dffits_abs = np.nan_to_num(np.abs(dffits, out=dffits), nan=0.0, posinf=0.0, copy=False)
+    cut = influence.cut
+    counts = result.influence_counts
+    for name, values in (("leverage_2p", h), ("leverage_3p", h), ("cooks_4n", cooks),
+                         ("cooks_median", cooks), ("cooks_1", cooks), ("dffits", dffits_abs),
+                         ("bonferroni", t_abs)):
+        counts[name][index] += np.count_nonzero(values > cut[name][:, None], axis=1)
+    for name, values in (("studentized", t_abs), ("cooks", cooks), ("leverage", h),
+                         ("dffits", dffits_abs)):
+        largest = values.max(axis=1)
+        tops = result.top[name]
+        for pos, model in enumerate(index):
+            top = tops[model]
+            # nothing in this chunk beats the smallest value kept: no merge
+            if top.values.size >= top.capacity and largest[pos] <= top.values.min():
+                continue
+            top.offer(values[pos], row_numbers, keys, e[pos], h[pos])
 
 def _accumulate_ordered(result: PassTwoResult, E: FloatArray, Z: FloatArray, keys: np.ndarray,
                         start: int, n_total: int, stride: int, last_e: FloatArray | None,
