@@ -489,6 +489,10 @@ def residual_pass(
     elif white_columns:
         result.white_skip = (f"the family's second-order design would have {width} columns "
                              f"(limit {options.white_max_columns})")
+    white_rows = [1 + c for c in result.white_columns]
+    white_position = {c: i for i, c in enumerate(result.white_columns)}
+    white_a = [1 + white_position[a] for a, _ in result.white_pairs]
+    white_b = [1 + white_position[b] for _, b in result.white_pairs]
     # influence
     k_top = options.top_rows
     result.top = {name: [TopRows(k_top) for _ in range(M)]
@@ -609,7 +613,11 @@ def residual_pass(
         Zfull = state.working_rows(X, y, out=buffer)
         Z = Zfull[:, :-1]
         y_centred = Zfull[:, -1] / y_scale
-        both = y_centred[:, None] - Z @ B_all
+        # residuals with models as rows: ``E`` is the (rows x models) view of a column-major
+        # array, so the per-model sums below reduce along contiguous memory
+        both_rows = B_all.T @ Z.T
+        np.subtract(y_centred, both_rows, out=both_rows)
+        both = both_rows.T
         E = both[:, :M]
         keys: np.ndarray
         if key_column is not None:
@@ -637,27 +645,24 @@ def residual_pass(
         np.maximum(result.column_max, X.max(axis=0), out=result.column_max)
         # ---- White
         if result.white_pairs:
-            cols = [1 + c for c in result.white_columns]
-            k = len(cols)
-            where = {c: i for i, c in enumerate(result.white_columns)}
-            a_idx = [1 + where[a] for a, _ in result.white_pairs]
-            b_idx = [1 + where[b] for _, b in result.white_pairs]
-            W2 = np.empty((m, 1 + k + len(a_idx)))
-            W2[:, 0] = 1.0
-            np.subtract(Z[:, cols], result.white_centre, out=W2[:, 1:1 + k])
-            W2[:, 1:1 + k] /= result.white_spread
-            products = W2[:, 1 + k:]
-            np.multiply(W2[:, a_idx], W2[:, b_idx], out=products)
-            products -= result.white_product_centre
-            result.white_zz += W2.T @ W2
-            result.white_zu += W2.T @ U
+            # auxiliary columns as rows (contiguous products), summed with BLAS
+            k = len(white_rows)
+            W2 = np.empty((1 + k + len(white_a), m))
+            W2[0] = 1.0
+            np.subtract(Z.T[white_rows], result.white_centre[:, None], out=W2[1:1 + k])
+            W2[1:1 + k] /= result.white_spread[:, None]
+            products = W2[1 + k:]
+            np.multiply(W2[white_a], W2[white_b], out=products)
+            products -= result.white_product_centre[:, None]
+            result.white_zz += W2 @ W2.T
+            result.white_zu += W2 @ U
         # ---- RESET
         fitted = (y_centred + state.shift[-1])[:, None] - E
         F = (fitted - result.reset_shift) / np.where(result.reset_scale > 0, result.reset_scale, 1)
         F2 = F * F
         F3 = F2 * F
-        FF = np.stack([F2, F3], axis=1)  # (m, 2, M)
-        result.zf += (Z.T @ FF.reshape(m, 2 * M)).reshape(q + 1, 2, M)
+        result.zf[:, 0, :] += Z.T @ F2
+        result.zf[:, 1, :] += Z.T @ F3
         result.ff[0] += np.einsum("ij,ij->j", F2, F2)
         result.ff[1] += np.einsum("ij,ij->j", F2, F3)
         result.ff[2] += np.einsum("ij,ij->j", F3, F3)
@@ -704,7 +709,8 @@ def residual_pass(
         index_grid = np.floor((E - result.grid_low) / result.grid_width)
         np.clip(index_grid, -1, G, out=index_grid)
         flat = (index_grid.astype(np.int64) + 1) + np.arange(M) * (G + 2)
-        result.grid_counts += np.bincount(flat.ravel(), minlength=M * (G + 2)).reshape(M, G + 2)
+        result.grid_counts += np.bincount(flat.ravel(order="K"),
+                                          minlength=M * (G + 2)).reshape(M, G + 2)
         # ---- frozen baseline model
         if frozen_B is not None and baseline_parts is not None:
             _accumulate_frozen(result, both[:, M:], X, Z, baseline_parts, start)
@@ -839,7 +845,9 @@ def _accumulate_ordered(result: PassTwoResult, E: FloatArray, Z: FloatArray, key
     m, M = E.shape
     L = result.lags
     if L:
-        ext = np.vstack([result.carry, E])
+        ext = np.empty((L + m, M), order="F")  # the layout of E: contiguous per model
+        ext[:L] = result.carry
+        ext[L:] = E
         for k in range(1, L + 1):
             lagged = ext[L - k: L - k + m]        # a view: e_{t-k} beside row t
             result.lag_sums[k] += np.einsum("ij,ij->j", E, lagged)
