@@ -256,25 +256,30 @@ def _accumulate_block(
     coefficients: Sequence[FloatArray],
     sums: Sequence[GradientSums | None],
 ) -> None:
-    XT = np.ascontiguousarray(X.T)
+    m = X.shape[0]
+    # the design as rows [1 | X]', split once for every model (the ones row splits
+    # into (1, 0), so a model's intercept entry of X'r is formed like the others)
+    XT = np.empty((X.shape[1] + 1, m))
+    XT[0] = 1.0
+    XT[1:] = X.T
     XT_high, XT_low = _split(XT)
-    m = XT.shape[1]
     high = np.empty(m)
     low = np.empty(m)
     product = np.empty(m)
     error = np.empty(m)
     work = np.empty(m)
+    spare = np.empty(m)
     for (columns, has_intercept), b, target in zip(models, coefficients, sums, strict=True):
         if target is None:
             continue
-        columns = [int(c) for c in columns]
+        rows = [1 + int(c) for c in columns]
         high[:] = y
         low[:] = 0.0
         slopes = b
         if has_intercept:
             _two_sum_into(high, np.float64(-b[0]), low, work, error)
             slopes = b[1:]
-        for j, coefficient in zip(columns, slopes, strict=True):
+        for j, coefficient in zip(rows, slopes, strict=True):
             minus_b = np.float64(-coefficient)
             b_high, b_low = _split(minus_b)
             x, x_high, x_low = XT[j], XT_high[j], XT_low[j]
@@ -288,34 +293,38 @@ def _accumulate_block(
             error += work
             np.multiply(x_low, b_low, out=work)
             error += work
-            low += error
-            _two_sum_into(high, product, low, work, error)
+            # Knuth: high + product == s + (a - (s - bb)) + (product - bb), bb = s - high
+            s_, bb = spare, work
+            np.add(high, product, out=s_)
+            np.subtract(s_, high, out=bb)
+            np.subtract(product, bb, out=product)
+            np.subtract(s_, bb, out=bb)
+            np.subtract(high, bb, out=bb)
+            bb += product
+            bb += error
+            low += bb
+            high, spare = s_, high
         r_high = high + low
         r_low = low - (r_high - high)
-        entries_high = []
-        entries_low = []
         if has_intercept:
-            h, lo = _row_sums(r_high[None, :])
-            entries_high.append(h)
-            entries_low.append(lo + float(np.sum(r_low)))
-        if columns:
-            Xm = XT[columns]
-            Xm_high = XT_high[columns]
-            Xm_low = XT_low[columns]
-            r_hh, r_hl = _split(r_high)
-            P = Xm * r_high
-            E = Xm_high * r_hh
-            E -= P
-            T = Xm_high * r_hl
-            E += T
-            np.multiply(Xm_low, r_hh, out=T)
-            E += T
-            np.multiply(Xm_low, r_hl, out=T)
-            E += T
-            h, lo = _row_sums(P)
-            entries_high.append(h)
-            entries_low.append(lo + E.sum(axis=1) + Xm @ r_low)
-        target.add_pairs(np.concatenate(entries_high), np.concatenate(entries_low))
+            rows = [0, *rows]
+        if not rows:
+            continue
+        Xm = XT[rows]
+        Xm_high = XT_high[rows]
+        Xm_low = XT_low[rows]
+        r_hh, r_hl = _split(r_high)
+        P = Xm * r_high
+        E = Xm_high * r_hh
+        E -= P
+        T = Xm_high * r_hl
+        E += T
+        np.multiply(Xm_low, r_hh, out=T)
+        E += T
+        np.multiply(Xm_low, r_hl, out=T)
+        E += T
+        entries_high, entries_low = _row_sums(P)
+        target.add_pairs(entries_high, entries_low + E.sum(axis=1) + Xm @ r_low)
         target.ssr += float(np.dot(r_high, r_high) + 2.0 * np.dot(r_high, r_low))
 
 
