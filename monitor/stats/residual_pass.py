@@ -857,17 +857,24 @@ def _accumulate_ordered(result: PassTwoResult, E: FloatArray, Z: FloatArray, key
             result.head[start:start + take] = E[:take]
         result.carry = ext[-L:].copy()
     result.lag_sums[0] += np.einsum("ij,ij->j", E, E)
-    previous = E[:-1] if last_e is None else np.vstack([last_e, E[:-1]])
-    current = E[1:] if last_e is None else E
-    difference = current - previous
+    if last_e is None:
+        difference = E[1:] - E[:-1]
+    else:
+        difference = np.empty((m, M), order="F")
+        np.subtract(E[1:], E[:-1], out=difference[1:])
+        np.subtract(E[0], last_e, out=difference[0])
     result.dw_numerator += np.einsum("ij,ij->j", difference, difference)
     # first differences of the design (Δ_1 = 0) and the second differences A z
+    # (one buffer: the previous chunk's last difference, then this chunk's)
+    sequence = np.empty((m + 1, Z.shape[1]))
+    delta = sequence[1:]
+    np.subtract(Z[1:], Z[:-1], out=delta[1:])
     if last_z is None:
-        delta = np.vstack([np.zeros((1, Z.shape[1])), np.diff(Z, axis=0)])
+        delta[0] = 0.0
         sequence = delta
     else:
-        delta = np.diff(np.vstack([last_z, Z]), axis=0)
-        sequence = np.vstack([last_delta, delta])
+        np.subtract(Z[0], last_z, out=delta[0])
+        sequence[0] = last_delta
     result.dz_dz += delta.T @ delta
     second = sequence[:-1] - sequence[1:]
     result.az_az += second.T @ second
