@@ -519,16 +519,7 @@ class HistoryStore:
             alert_ids = self._upsert_alerts(conn, claim.monitor, run_id, alert_rows, moment)
             self._enqueue(conn, run_id, delivery_rows, alert_ids, moment)
             self._insert_files(conn, claim.monitor, run_id, file_rows, moment)
-            slots, attempts = self.tables.slots, self.tables.attempts
-            conn.execute(slots.update()
-                         .where(slots.c.monitor == claim.monitor,
-                                slots.c.slot_at == claim.slot_at)
-                         .values(run_id=run_id))
-            conn.execute(attempts.update()
-                         .where(attempts.c.monitor == claim.monitor,
-                                attempts.c.slot_at == claim.slot_at,
-                                attempts.c.attempt == claim.attempt)
-                         .values(outcome="completed", ended_at=moment, run_id=run_id))
+            self._close_attempt(conn, claim, run_id, "completed", moment)
         return run_id
 
     def fail_run(self, claim: SlotClaim, step: str, reason: str, *,
@@ -558,17 +549,21 @@ class HistoryStore:
                                       error_message=reason)
             alert_ids = self._upsert_alerts(conn, claim.monitor, run_id, alert_rows, moment)
             self._enqueue(conn, run_id, delivery_rows, alert_ids, moment)
-            slots, attempts = self.tables.slots, self.tables.attempts
-            conn.execute(slots.update()
-                         .where(slots.c.monitor == claim.monitor,
-                                slots.c.slot_at == claim.slot_at)
-                         .values(run_id=run_id))
-            conn.execute(attempts.update()
-                         .where(attempts.c.monitor == claim.monitor,
-                                attempts.c.slot_at == claim.slot_at,
-                                attempts.c.attempt == claim.attempt)
-                         .values(outcome="failed", ended_at=moment, run_id=run_id))
+            self._close_attempt(conn, claim, run_id, "failed", moment)
         return run_id
+
+    def _close_attempt(self, conn: sa.Connection, claim: SlotClaim, run_id: int, outcome: str,
+                       moment: dt.datetime) -> None:
+        """Point the slot at its run and close the claim's attempt with its outcome."""
+        slots, attempts = self.tables.slots, self.tables.attempts
+        conn.execute(slots.update()
+                     .where(slots.c.monitor == claim.monitor, slots.c.slot_at == claim.slot_at)
+                     .values(run_id=run_id))
+        conn.execute(attempts.update()
+                     .where(attempts.c.monitor == claim.monitor,
+                            attempts.c.slot_at == claim.slot_at,
+                            attempts.c.attempt == claim.attempt)
+                     .values(outcome=outcome, ended_at=moment, run_id=run_id))
 
     def _inserted(self, table: sa.Table) -> None:
         if _between_inserts is not None:
