@@ -111,8 +111,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from storage.sources import DECLARED_TYPES
 
-from ..errors import ConfigurationError, FormulaError
-from ..stats.formula import parse_formula
+from ..errors import ConfigurationError
 
 __all__ = [
     "AlertSettings",
@@ -403,52 +402,13 @@ def _check_cron(text: str, where: str) -> None:
 
 
 def parse_family(table: Mapping[str, Any], where: str) -> FamilySettings:
-    """The family keys (also the whole content of a family file)."""
-    reader = _Reader(table, where)
-    response = reader.get("response", str, hint="name the response column, e.g. response = 'y'")
-    chosen = reader.get("chosen", str, hint="name the candidate in production")
-    criterion = reader.get("criterion", str, "aic").lower()
-    if criterion not in _CRITERIA:
-        raise ConfigurationError(f"{reader.key('criterion')} must be one of "
-                                 f"{', '.join(_CRITERIA)}, got {_show(criterion)}",
-                                 where=reader.key("criterion"), hint="pick aic, bic or aicc")
-    alpha = reader.get("alpha", float, 0.05)
-    if not 0.0 < alpha < 1.0:
-        raise ConfigurationError(f"{reader.key('alpha')} must lie between 0 and 1, got {alpha}",
-                                 where=reader.key("alpha"), hint="the usual level is 0.05")
-    margin = reader.get("margin", float, 2.0)
-    if margin < 0:
-        raise ConfigurationError(f"{reader.key('margin')} must not be negative, got {margin}",
-                                 where=reader.key("margin"), hint="the usual margin is 2")
-    candidates_reader = reader.table_of("candidates")
-    assert candidates_reader is not None
-    candidates: dict[str, str] = {}
-    for name in candidates_reader.table:
-        formula = candidates_reader.get(name, str, hint="write name = \"y ~ x + z\"")
-        key = candidates_reader.key(name)
-        if not _NAME.match(name):
-            raise ConfigurationError(f"candidate name {name!r} is not allowed", where=key,
-                                     hint="use letters, digits, '_', '-' or '.'")
-        try:
-            parsed = parse_formula(formula)
-        except FormulaError as error:
-            raise ConfigurationError(f"{key}: {error.what}", where=key,
-                                     hint=error.hint or "fix the formula") from error
-        if parsed.response.label != response:
-            raise ConfigurationError(
-                f"{key} models {parsed.response.label!r} but the family's response is "
-                f"{response!r}", where=key, hint="every candidate must have the same response")
-        candidates[name] = formula
-    if len(candidates) < 2:
-        raise ConfigurationError(f"{candidates_reader.path} needs at least 2 candidates, got "
-                                 f"{len(candidates)}", where=candidates_reader.path,
-                                 hint="a family compares models: add another candidate")
-    if chosen not in candidates:
-        raise ConfigurationError(f"{reader.key('chosen')} = {chosen!r} is not a candidate",
-                                 where=reader.key("chosen"),
-                                 hint=f"the candidates are: {', '.join(candidates)}")
-    reader.finish()
-    return FamilySettings(response, candidates, chosen, criterion, float(alpha), float(margin))
+    """The family keys (also the whole content of a family file), validated by the family's
+    own parser (:func:`monitor.family.parse_family_mapping`) with the key path ``where``."""
+    from ..family import parse_family_mapping
+
+    family = parse_family_mapping(table, where=where)
+    return FamilySettings(family.response, dict(family.candidates), family.chosen,
+                          family.criterion, float(family.alpha), float(family.margin))
 
 
 def _parse_source(reader: _Reader, base: Path | None) -> SourceSpec:
