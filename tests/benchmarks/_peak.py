@@ -9,6 +9,7 @@ resident set at the moment of the fork, so it is useless when the parent is big.
 
 from __future__ import annotations
 
+import json
 import os
 import subprocess
 import sys
@@ -53,3 +54,21 @@ def run_python(script: str, *arguments: str) -> Measured:
         err.seek(0)
         return Measured(child.returncode, out.read(), err.read(), wall,
                         usage.ru_maxrss / 1024.0)
+
+
+def report_side(result: dict[str, object]) -> None:
+    """In a measured child: print the side's result as JSON, with its own peak memory."""
+    print(json.dumps({**result, "own_peak_mb": own_peak_mb()}))
+
+
+def run_side(script: str, side: str, path: object) -> tuple[dict[str, object], Measured]:
+    """Run one side of a benchmark in its own process; its result with ``peak_rss_mb``.
+
+    The peak is the child's own VmHWM (see the module notes), never ``wait4``'s figure.
+    """
+    done = run_python(script, "--side", side, "--path", str(path))
+    if done.returncode != 0:
+        raise SystemExit(f"side {side} failed ({done.returncode}):\n{done.stderr}")
+    result = json.loads(done.stdout.strip().splitlines()[-1])
+    result["peak_rss_mb"] = result.pop("own_peak_mb")
+    return result, done

@@ -36,7 +36,6 @@ committed.  The machines are shared and noisy: medians of ``--repeats`` runs.
 from __future__ import annotations
 
 import argparse
-import json
 import statistics
 import sys
 import time
@@ -201,9 +200,11 @@ def main() -> None:
                   "regwarden-norefine": lambda: side_regwarden(options.path, False),
                   "floor": lambda: side_floor(options.path),
                   "statsmodels": lambda: side_statsmodels(options.path)}[options.side]()
-        print(json.dumps(result))
+        from _peak import report_side
+
+        report_side(result)
         return
-    from _peak import run_python
+    from _peak import run_side
 
     path = Path(f"/tmp/regwarden_bench_checks_{options.rows}.parquet")
     if not path.exists():
@@ -212,12 +213,9 @@ def main() -> None:
     measured: dict[str, list] = {}  # type: ignore[type-arg]
     for _ in range(options.repeats):
         for side in options.sides:
-            run = run_python(__file__, "--side", side, "--path", str(path))
-            if run.returncode != 0:
-                raise SystemExit(f"side {side} failed:\n{run.stderr}")
-            data = json.loads(run.stdout.strip().splitlines()[-1])
-            measured.setdefault(side, []).append((data["seconds"], run.peak_rss_mb, data))
-            print(f"  {side:20s} {data['seconds']:8.2f} s  peak {run.peak_rss_mb:8.0f} MB  "
+            data, _ = run_side(__file__, side, path)
+            measured.setdefault(side, []).append((data["seconds"], data["peak_rss_mb"], data))
+            print(f"  {side:20s} {data['seconds']:8.2f} s  peak {data['peak_rss_mb']:8.0f} MB  "
                   f"{data}", file=sys.stderr)
     print(f"\n{options.rows:,} rows, {len(CANDIDATES)} candidates, medians of "
           f"{options.repeats} run(s)")

@@ -28,7 +28,6 @@ nothing here is committed.  The machines are shared and noisy: medians.
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import statistics
 import sys
@@ -155,15 +154,11 @@ SIDES = {"read-only": side_read_only, "regwarden": side_regwarden,
 
 
 def measure(side: str, path: Path, repeats: int) -> dict[str, object]:
-    from _peak import run_python
+    from _peak import run_side
 
     runs = []
     for _ in range(repeats):
-        done = run_python(__file__, "--side", side, "--path", str(path))
-        if done.returncode != 0:
-            raise SystemExit(f"{side} failed ({done.returncode}):\n{done.stderr}")
-        result = json.loads(done.stdout.strip().splitlines()[-1])
-        result["peak_rss_mb"] = done.peak_rss_mb
+        result, _ = run_side(__file__, side, path)
         runs.append(result)
     summary: dict[str, object] = {
         key: statistics.median(r[key] for r in runs) for key in runs[0]
@@ -208,7 +203,9 @@ def main() -> None:
     parser.add_argument("--path", help=argparse.SUPPRESS)
     options = parser.parse_args()
     if options.side:  # inside a measured child process
-        print(json.dumps(SIDES[options.side](options.path)))
+        from _peak import report_side
+
+        report_side(SIDES[options.side](options.path))
         return
     if options.blas_threads is not None:
         for variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):

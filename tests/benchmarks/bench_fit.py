@@ -27,7 +27,6 @@ The data are synthetic (seeded, invented for this benchmark), written under
 from __future__ import annotations
 
 import argparse
-import json
 import statistics
 import sys
 import time
@@ -155,15 +154,11 @@ SIDES = {"regwarden": side_regwarden, "regwarden-plain": side_regwarden_plain,
 
 
 def measure(side: str, path: Path, repeats: int) -> dict[str, float]:
-    from _peak import run_python
+    from _peak import run_side
 
     runs = []
     for _ in range(repeats):
-        done = run_python(__file__, "--side", side, "--path", str(path))
-        if done.returncode != 0:
-            raise SystemExit(f"{side} failed ({done.returncode}):\n{done.stderr}")
-        report = json.loads(done.stdout.strip().splitlines()[-1])
-        report["peak_rss_mb"] = report.pop("own_peak_mb")  # VmHWM of the child itself
+        report, done = run_side(__file__, side, path)
         report["wall_seconds"] = done.wall_seconds
         runs.append(report)
     summary = {key: statistics.median(r[key] for r in runs) for key in runs[0]}
@@ -208,11 +203,9 @@ def main() -> None:
     parser.add_argument("--path", help=argparse.SUPPRESS)
     options = parser.parse_args()
     if options.side:  # inside a measured child process
-        from _peak import own_peak_mb
+        from _peak import report_side
 
-        result = SIDES[options.side](options.path)
-        result["own_peak_mb"] = own_peak_mb()
-        print(json.dumps(result))
+        report_side(SIDES[options.side](options.path))
         return
     for rows in options.rows:
         path = make_file(rows, options.directory)
