@@ -204,8 +204,15 @@ def test_an_empty_fresh_bin_counts_as_half_a_row_not_as_a_tiny_floor():
     baseline = np.full(10, 36.5)
     psi = population_stability_index(half_row_shares(baseline), half_row_shares(fresh))
     floored = population_stability_index(baseline / baseline.sum(), fresh / fresh.sum())
-    assert floored > 1.0
-    assert 0.1 < psi < 0.5
+    # METHODS §10 [C]: PSI = entropy(pF, pB) + entropy(pB, pF), here with half a row added
+    # to each bin: scipy.stats.entropy on (counts + 0.5) gives 0.3420869601452423; with the
+    # 1e-6 floor the same shares give 1.2205957516275525 (computed by hand from the formula)
+    shares_fresh, shares_base = (fresh + 0.5) / (fresh + 0.5).sum(), np.full(10, 0.1)
+    expected = stats.entropy(shares_fresh, shares_base) + stats.entropy(shares_base,
+                                                                        shares_fresh)
+    assert abs(psi - expected) <= 1e-12 * expected
+    assert abs(psi - 0.3420869601452423) <= 1e-12
+    assert abs(floored - 1.2205957516275525) <= 1e-12
 
 
 def test_population_stability_index_floors_empty_bins():
